@@ -1,0 +1,1 @@
+"""Cell-function bridge and headless recalculation for layerwise."""

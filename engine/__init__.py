@@ -1,0 +1,30 @@
+"""layerwise engine: loss models, layer terms, distortions and spectral layer prices.
+
+Typical use::
+
+    import layerwise.engine as lw
+    model = lw.FrequencySeverity(lw.poisson(5), lw.lognormal(mean=2e6, cv=2.5))
+    tower = lw.stack([5e6, 10e6, 25e6], start=5e6)
+    lw.price_layers(model, tower, lw.WangTransform(0.4))
+
+Amounts are in the model's currency units; probabilities are annual.
+"""
+from .distortions import (
+    Blend, CostOfCapital, Distortion, DualPower, FAMILIES, ProportionalHazard, TableDistortion,
+    TVaRDistortion, WangTransform, make_distortion,
+)
+from .distribution import LossDistribution
+from .errors import GridWarning, InputError
+from .frequency import (
+    Binomial, FixedCount, Frequency, NegativeBinomial, Poisson, binomial, fixed_count, make_frequency,
+    negative_binomial, poisson,
+)
+from .layers import Layer, stack
+from .models import FrequencySeverity, LossModel, ScenarioTable, YearEventTable, YearLossTable
+from .pricing import COLUMNS, layer_statistics, price_layer, price_layers
+from .severity import (
+    Severity, exponential, from_scipy, gamma, generalized_pareto, lognormal, make_severity, pareto,
+    single_pareto, weibull,
+)
+
+__all__ = [name for name in dir() if not name.startswith("_")]

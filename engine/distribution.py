@@ -1,0 +1,277 @@
+"""The one representation every loss model reduces to: a discrete distribution.
+
+A :class:`LossDistribution` holds atoms ``values`` (ascending, distinct,
+non-negative float64, shape (n,)) and ``sf`` = P(X > values[i]) (shape (n,),
+non-increasing, last entry 0). Its survival function is therefore a step
+function, and every integral of it is computed exactly, segment by segment:
+
+    integral_x^inf g(S(t)) dt,   with S constant on [values[i], values[i+1]).
+
+No derivative of g is ever taken, so atoms and ties need no special care, and
+a layer boundary between two atoms is just a partial segment.
+
+Grid (Fourier) models may leave probability ``beyond`` the top of their grid.
+It is held as an atom at ``top``: every result is exact for layers that end at
+or below ``top`` and a lower bound above it; :meth:`beyond_bound` gives the
+largest possible error for a layer.
+"""
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from .errors import InputError, as_array
+
+__all__ = ["LossDistribution"]
+
+_IDENTITY = None  # a distortion argument of None means g(s) = s (the expected value)
+QUANTILE_TOL = 1e-12  # probability slack when inverting the cdf, so equal-weight samples hit exact order statistics
+
+
+@dataclass(frozen=True, eq=False)
+class LossDistribution:
+    """Discrete non-negative loss distribution with a step survival function.
+
+    Build one with :meth:`from_atoms` or :meth:`from_sample` rather than directly.
+    ``beyond`` is probability that lies at or above ``top`` in the true model
+    but is held at ``top`` here (0 for exact models).
+    """
+
+    values: np.ndarray
+    sf: np.ndarray
+    beyond: float = 0.0
+    top: float = math.inf
+    diagnostics: dict = field(default_factory=dict)
+
+    # ----------------------------------------------------------------- building
+    @classmethod
+    def from_atoms(cls, values, probs, *, beyond: float = 0.0, top: float | None = None, diagnostics=None, sorted_unique=False):
+        """Distribution from outcomes and probabilities (any order, ties allowed).
+
+        ``probs`` must be non-negative and sum (with ``beyond``) to 1 within 1e-9;
+        they are renormalised exactly. ``beyond`` mass is placed at ``top``.
+        """
+        v = as_array(values, "values", low=0.0)
+        p = as_array(probs, "probabilities", low=0.0)
+        if v.size != p.size:
+            raise InputError("probabilities", f"needs one probability per value ({v.size}), got {p.size}")
+        total = p.sum() + beyond
+        if abs(total - 1.0) > 1e-9:
+            raise InputError("probabilities", f"must sum to 1, they sum to {total:.12g}")
+        if beyond > 0:
+            if top is None or not math.isfinite(top) or (v.size and top < v.max()):
+                raise InputError("top", "mass beyond the grid needs a finite top at or above every value")
+            v = np.append(v, top)
+            p = np.append(p, beyond)
+        if not sorted_unique:
+            v, p = _merge_ties(v, p)
+        sf = _sf_from_probs(p)
+        return cls(v, sf, float(beyond), float(top) if top is not None else math.inf, dict(diagnostics or {}))
+
+    @classmethod
+    def from_sample(cls, losses, weights=None, *, argument="losses"):
+        """Empirical distribution of a sample (e.g. simulated annual losses), optionally weighted."""
+        x = as_array(losses, argument, low=0.0)
+        if weights is None:
+            xs = np.sort(x, kind="stable")
+            keep = np.empty(xs.size, dtype=bool)
+            keep[0] = True
+            np.not_equal(xs[1:], xs[:-1], out=keep[1:])
+            starts = np.flatnonzero(keep)
+            v = xs[starts]
+            # counts above each atom, exact integers until the final division
+            above = xs.size - np.append(starts[1:], xs.size)
+            sf = above / xs.size
+            return cls(v, sf, 0.0, math.inf, {"sample_size": int(x.size)})
+        w = as_array(weights, "weights", low=0.0)
+        if w.size != x.size:
+            raise InputError("weights", f"needs one weight per loss ({x.size}), got {w.size}")
+        if not w.sum() > 0:
+            raise InputError("weights", "must not all be zero")
+        order = np.argsort(x, kind="stable")
+        v, p = _merge_ties(x[order], w[order] / w.sum(), presorted=True)
+        return cls(v, _sf_from_probs(p), 0.0, math.inf, {"sample_size": int(x.size)})
+
+    # ----------------------------------------------------------------- basics
+    @property
+    def probs(self) -> np.ndarray:
+        """Probability of each atom, shape (n,)."""
+        return -np.diff(self.sf, prepend=1.0)
+
+    @property
+    def size(self) -> int:
+        return int(self.values.size)
+
+    @property
+    def max(self) -> float:
+        return float(self.values[-1])
+
+    def survival(self, x) -> np.ndarray:
+        """P(X > x), vectorised over ``x``."""
+        x = np.asarray(x, dtype=float)
+        i = np.searchsorted(self.values, x, side="right") - 1
+        out = np.where(i >= 0, self.sf[np.clip(i, 0, None)], 1.0)
+        return out if out.ndim else float(out)
+
+    def survival_left(self, x) -> np.ndarray:
+        """P(X >= x), vectorised over ``x``."""
+        x = np.asarray(x, dtype=float)
+        i = np.searchsorted(self.values, x, side="left") - 1
+        out = np.where(i >= 0, self.sf[np.clip(i, 0, None)], 1.0)
+        return out if out.ndim else float(out)
+
+    def cdf(self, x):
+        return 1.0 - self.survival(x)
+
+    def quantile(self, p) -> np.ndarray:
+        """Lower quantile (VaR): the smallest x with P(X <= x) >= p, for p in [0, 1]."""
+        p = np.asarray(p, dtype=float)
+        if np.any(~np.isfinite(p)) or np.any((p < 0) | (p > 1)):
+            raise InputError("p", "probability levels must lie in [0, 1]")
+        # P(X <= v_i) >= p  <=>  sf_i <= 1 - p; sf is non-increasing, search its negation.
+        i = np.searchsorted(-self.sf, -(1.0 - p) - QUANTILE_TOL, side="left")
+        out = self.values[np.clip(i, 0, self.size - 1)]
+        return out if out.ndim else float(out)
+
+    # ----------------------------------------------------------------- integrals
+    def _levels(self, distortion):
+        """g(S) on each segment [values[i], values[i+1]); g(S)=1 on [0, values[0])."""
+        return self.sf if distortion is None else np.asarray(distortion(self.sf), dtype=float)
+
+    def tail_integral(self, x, distortion=None, power: int = 0) -> np.ndarray:
+        """integral_x^inf t**power * g(S(t)) dt (power 0 or 1), vectorised over ``x`` >= 0.
+
+        Summed from the top down, so high layers keep their relative precision.
+        """
+        x = np.asarray(x, dtype=float)
+        v = self.values
+        lev = self._levels(distortion)
+        # segment i is [v[i], v[i+1]); the last segment carries level 0 (sf[-1] == 0).
+        if power == 0:
+            seg = lev[:-1] * np.diff(v)
+        else:
+            seg = lev[:-1] * 0.5 * (v[1:] ** 2 - v[:-1] ** 2)
+        above = np.zeros(v.size)  # above[i] = integral over [v[i], inf)
+        if seg.size:
+            above[:-1] = np.cumsum(seg[::-1])[::-1]
+        xc = np.minimum(x, v[-1])
+        i = np.searchsorted(v, xc, side="right") - 1
+        inside = i >= 0
+        j = np.clip(i, 0, v.size - 1)
+        jn = np.clip(j + 1, 0, v.size - 1)
+        if power == 0:
+            part = lev[j] * (v[jn] - xc)
+            head = (v[0] - xc) + above[0]  # g(1) = 1 below the first atom
+        else:
+            part = lev[j] * 0.5 * (v[jn] ** 2 - xc**2)
+            head = 0.5 * (v[0] ** 2 - xc**2) + above[0]
+        part = np.where(jn > j, part, 0.0)
+        out = np.where(inside, above[jn] * (jn > j) + part, head)
+        out = np.where(x >= v[-1], 0.0, out)
+        return out if out.ndim else float(out)
+
+    def layer_integral(self, attachment, limit, distortion=None) -> np.ndarray:
+        """integral over [a, a + l] of g(S(x)) dx: the distorted price of the layer (a, l).
+
+        With ``distortion=None`` this is the layer's expected loss. Vectorised:
+        ``attachment`` and ``limit`` broadcast together; ``limit`` may be inf.
+        """
+        a = np.asarray(attachment, dtype=float)
+        top = a + np.asarray(limit, dtype=float)
+        return self.tail_integral(a, distortion) - self.tail_integral(top, distortion)
+
+    def layer_second_moment(self, attachment, limit) -> np.ndarray:
+        """E[min(max(X - a, 0), l)**2] = 2 * integral_a^{a+l} (x - a) S(x) dx."""
+        a = np.asarray(attachment, dtype=float)
+        top = a + np.asarray(limit, dtype=float)
+        first = self.tail_integral(a) - self.tail_integral(top)
+        second = self.tail_integral(a, power=1) - self.tail_integral(top, power=1)
+        return np.maximum(2.0 * (second - a * first), 0.0)
+
+    # ----------------------------------------------------------------- whole-variable statistics
+    def mean(self) -> float:
+        return float(self.tail_integral(0.0))
+
+    def price(self, distortion) -> float:
+        """Distorted (spectral) price of the whole variable: integral_0^inf g(S(x)) dx."""
+        return float(self.tail_integral(0.0, distortion))
+
+    def variance(self) -> float:
+        m = self.mean()
+        return float(max(2.0 * self.tail_integral(0.0, power=1) - m * m, 0.0))
+
+    def std(self) -> float:
+        return math.sqrt(self.variance())
+
+    def tvar(self, p) -> np.ndarray:
+        """Tail value at risk at level p: the price under g(s) = min(s / (1 - p), 1)."""
+        from .distortions import TVaRDistortion
+
+        p = np.atleast_1d(np.asarray(p, dtype=float))
+        out = np.array([self.price(TVaRDistortion(q)) for q in p])
+        return out if out.size > 1 else float(out[0])
+
+    # ----------------------------------------------------------------- transforms
+    def layer(self, attachment: float, limit: float = math.inf) -> "LossDistribution":
+        """Exact distribution of min(max(X - a, 0), l)."""
+        v = np.clip(self.values - attachment, 0.0, limit)
+        lo = np.searchsorted(v, 0.0, side="right") - 1  # last atom mapped to 0
+        hi = np.searchsorted(v, limit, side="left") if math.isfinite(limit) else v.size  # first atom mapped to l
+        keep = np.arange(max(lo, 0), min(hi, v.size - 1) + 1)
+        vals = v[keep]
+        sf = self.sf[keep]
+        if math.isfinite(limit) and hi < v.size:
+            sf = sf.copy()
+            sf[-1] = 0.0
+        diag = dict(self.diagnostics)
+        if self.beyond > 0 and self.top < attachment + limit:
+            diag["beyond_unbounded"] = True
+        return LossDistribution(vals, sf, self.beyond if self.top < attachment + limit else 0.0,
+                                self.top - attachment if self.top < attachment + limit else math.inf, diag)
+
+    def scaled(self, factor: float) -> "LossDistribution":
+        """Distribution of factor * X (factor > 0), e.g. a participation share."""
+        if not factor > 0:
+            raise InputError("share", f"must be positive, got {factor!r}")
+        return LossDistribution(self.values * factor, self.sf, self.beyond, self.top * factor, dict(self.diagnostics))
+
+    def beyond_bound(self, attachment, limit, distortion=None) -> np.ndarray:
+        """Largest error of a layer integral caused by mass held at ``top``."""
+        a = np.asarray(attachment, dtype=float)
+        t = a + np.asarray(limit, dtype=float)
+        if self.beyond <= 0:
+            return np.zeros(np.broadcast(a, t).shape)
+        gb = self.beyond if distortion is None else float(distortion(self.beyond))
+        overlap = np.maximum(t - np.maximum(a, self.top), 0.0)
+        with np.errstate(invalid="ignore"):
+            return np.where(overlap > 0, gb * overlap, 0.0)
+
+    def __repr__(self):
+        extra = f", beyond={self.beyond:.3g} at {self.top:.6g}" if self.beyond > 0 else ""
+        return f"LossDistribution({self.size} atoms on [{self.values[0]:.6g}, {self.values[-1]:.6g}], mean={self.mean():.6g}{extra})"
+
+
+def _merge_ties(v: np.ndarray, p: np.ndarray, presorted: bool = False):
+    """Sort atoms and add up the probabilities of equal values."""
+    if not presorted:
+        order = np.argsort(v, kind="stable")
+        v, p = v[order], p[order]
+    if v.size == 0:
+        raise InputError("values", "is empty")
+    keep = np.empty(v.size, dtype=bool)
+    keep[0] = True
+    np.not_equal(v[1:], v[:-1], out=keep[1:])
+    starts = np.flatnonzero(keep)
+    return v[starts], np.add.reduceat(p, starts)
+
+
+def _sf_from_probs(p: np.ndarray) -> np.ndarray:
+    """P(X > v_i) by summing the probabilities above, from the top down (accurate in the tail)."""
+    sf = np.zeros(p.size)
+    if p.size > 1:
+        sf[:-1] = np.cumsum(p[:0:-1])[::-1]
+    total = sf[0] + p[0] if p.size else 1.0
+    sf /= total  # renormalise exactly so the sf starts from a proper distribution
+    return sf

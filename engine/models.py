@@ -1,0 +1,400 @@
+"""Loss models: each one turns layer terms into the distribution of the layer's annual loss.
+
+Every model has the same small method set:
+
+* ``annual(occ_attachment=0, occ_limit=inf)`` -> :class:`LossDistribution` of
+  the year's sum of per-occurrence payments min(max(X_i - a, 0), l);
+* ``layer_distribution(layer)`` -> the layer's annual loss after aggregate
+  deductible, aggregate limit and share;
+* ``mean`` (the ground-up annual mean) and ``describe()``.
+
+Models are immutable; the distributions they compute are cached on the
+instance (bounded, thread-safe), so pricing many layers or distortions on one
+model builds each distribution once.
+"""
+from __future__ import annotations
+
+import hashlib
+import math
+import threading
+from collections import OrderedDict
+from dataclasses import dataclass, field
+
+import numpy as np
+from scipy import integrate
+
+from .distribution import LossDistribution
+from .errors import InputError, as_array, as_float
+from .fourier import MAX_GRID_LENGTH, METHODS, aggregate, discretise, nice_bucket
+from .frequency import Frequency
+from .layers import Layer
+from .severity import Severity
+
+__all__ = ["LossModel", "FrequencySeverity", "YearLossTable", "YearEventTable", "ScenarioTable", "MAX_SAMPLE_SIZE"]
+
+MAX_SAMPLE_SIZE = 50_000_000  # upper bound on work: rows of a loss table
+_CACHE_ENTRIES = 64
+BEYOND_TARGET = 1e-10  # the automatic grid aims to leave at most this probability beyond its top
+
+
+class _Cache:
+    """Small thread-safe LRU of computed distributions, keyed by per-occurrence terms."""
+
+    def __init__(self):
+        self._lock = threading.RLock()
+        self._items: OrderedDict = OrderedDict()
+
+    def get(self, key, build):
+        with self._lock:
+            if key in self._items:
+                self._items.move_to_end(key)
+                return self._items[key]
+        value = build()  # built outside the lock: two threads may both build, both get equal results
+        with self._lock:
+            self._items[key] = value
+            self._items.move_to_end(key)
+            while len(self._items) > _CACHE_ENTRIES:
+                self._items.popitem(last=False)
+        return value
+
+    def nbytes(self) -> int:
+        with self._lock:
+            return sum(d.values.nbytes + d.sf.nbytes for d in self._items.values())
+
+    def clear(self):
+        with self._lock:
+            self._items.clear()
+
+
+class LossModel:
+    """Base class for loss models (see module docstring)."""
+
+    occurrence_terms = True  # False for models that hold annual totals only
+
+    def annual(self, occ_attachment: float = 0.0, occ_limit: float = math.inf) -> LossDistribution:
+        a = as_float(occ_attachment, "attachment", low=0.0)
+        l = as_float(occ_limit, "limit", low=0.0, low_open=True, allow_inf=True)
+        if (a > 0 or math.isfinite(l)) and not self.occurrence_terms:
+            raise InputError(
+                "attachment",
+                f"a {type(self).__name__} holds annual totals, so per-occurrence terms cannot apply; "
+                "use an aggregate layer, or a year-event table or frequency-severity model",
+            )
+        return self._cache.get((a, l), lambda: self._annual(a, l))
+
+    def layer_distribution(self, layer: Layer) -> LossDistribution:
+        """Distribution of the layer's annual loss, share included."""
+        u = self.annual(layer.occ_attachment, layer.occ_limit)
+        d = u.layer(layer.agg_attachment, layer.agg_limit)
+        return d.scaled(layer.share) if layer.share != 1.0 else d
+
+    def cache_nbytes(self) -> int:
+        """Memory held by this model's cached distributions."""
+        return self._cache.nbytes() + getattr(self, "_data_nbytes", 0)
+
+    def clear_cache(self):
+        self._cache.clear()
+
+    @property
+    def mean(self) -> float:
+        return self.annual().mean()
+
+    def _annual(self, a, l):  # pragma: no cover - abstract
+        raise NotImplementedError
+
+
+def _array_digest(*arrays) -> str:
+    h = hashlib.blake2b(digest_size=16)
+    for arr in arrays:
+        if arr is not None:
+            h.update(np.ascontiguousarray(arr).view(np.uint8))
+        h.update(b"|")
+    return h.hexdigest()
+
+
+# --------------------------------------------------------------------------- frequency-severity
+@dataclass(frozen=True, eq=False)
+class FrequencySeverity(LossModel):
+    """Compound model: N claims a year (``frequency``), each of size X (``severity``), independent.
+
+    Aggregated by FFT on a uniform grid. ``bucket`` (grid spacing) and
+    ``grid_length`` (number of grid points, a power of 2) are chosen from the
+    distributions when not given: the ground-up grid reaches the point where
+    at most about 1e-10 of probability lies beyond; a per-occurrence layer's
+    grid makes its limit a whole number of buckets and reaches
+    limit * (99.9999999999% quantile of N). ``method`` is the severity
+    discretisation ("moment" preserves means; "rounding").
+    """
+
+    frequency: Frequency
+    severity: Severity
+    bucket: float | None = None
+    grid_length: int | None = None
+    method: str = "moment"
+    padding: int = 2
+    _cache: _Cache = field(default_factory=_Cache, repr=False, compare=False)
+
+    def __post_init__(self):
+        if not isinstance(self.frequency, Frequency):
+            raise InputError("frequency", f"expected a frequency distribution, got {self.frequency!r}")
+        if not isinstance(self.severity, Severity):
+            raise InputError("severity", f"expected a severity distribution, got {self.severity!r}")
+        if self.bucket is not None:
+            object.__setattr__(self, "bucket", as_float(self.bucket, "bucket", low=0.0, low_open=True))
+        if self.grid_length is not None:
+            n = as_float(self.grid_length, "grid_length", low=16, high=MAX_GRID_LENGTH)
+            if n != int(n) or int(n) & (int(n) - 1):
+                raise InputError("grid_length", f"must be a power of 2 between 16 and {MAX_GRID_LENGTH}, got {n:g}")
+            object.__setattr__(self, "grid_length", int(n))
+        if self.method not in METHODS:
+            raise InputError("method", f"must be one of {', '.join(METHODS)}, got {self.method!r}")
+        p = as_float(self.padding, "padding", low=2, high=8)
+        object.__setattr__(self, "padding", int(p))
+
+    def key(self) -> tuple:
+        return ("fs", repr(self.frequency), repr(self.severity), self.bucket, self.grid_length, self.method, self.padding)
+
+    def __eq__(self, other):
+        return isinstance(other, FrequencySeverity) and self.key() == other.key()
+
+    def __hash__(self):
+        return hash(self.key())
+
+    def describe(self) -> str:
+        return f"{self.frequency!r} claims of {self.severity!r}"
+
+    # -- grid choice ---------------------------------------------------------
+    def grid(self, occ_attachment: float = 0.0, occ_limit: float = math.inf) -> tuple[float, int]:
+        """(bucket, grid_length) used for the given per-occurrence terms."""
+        freq, sev = self.frequency, self.severity
+        if math.isfinite(occ_limit):
+            n_top = max(freq.ppf(1.0 - 1e-12), 1.0)
+            n = self.grid_length or int(min(max(2 ** math.ceil(math.log2(512 * n_top + 1)), 2**12), 2**20))
+            if self.bucket is not None:
+                h = self.bucket
+                m = occ_limit / h
+                if abs(m - round(m)) > 1e-9 * m or round(m) < 1:
+                    raise InputError("bucket", f"must divide the limit {occ_limit:g} into a whole number of buckets")
+                if round(m) >= n:
+                    raise InputError("grid_length", f"{n} points with bucket {h:g} do not reach the limit {occ_limit:g}")
+            else:
+                m = max(int(n / (n_top + 1)), 1)
+                h = occ_limit / m
+            return float(h), int(n)
+        # ground-up (or unlimited excess) severity
+        mean_n, var_n = freq.mean, freq.variance
+        ms, vs = sev.mean, sev.variance
+        targets = []
+        if math.isfinite(vs) and math.isfinite(ms):
+            targets.append(mean_n * ms + 12.0 * math.sqrt(mean_n * vs + var_n * ms * ms))
+        big = float(sev.isf(BEYOND_TARGET / max(mean_n, 1.0)))
+        targets.append(big * max(freq.ppf(1 - 1e-6), 1.0) ** 0.0)
+        top = max(t for t in targets if math.isfinite(t)) + occ_attachment * 0.0
+        ref = float(sev.ppf(0.5)) if not math.isfinite(ms) else min(ms, float(sev.ppf(0.9)))
+        if self.bucket is not None:
+            h = self.bucket
+            n = self.grid_length or int(min(max(2 ** math.ceil(math.log2(top / h + 1)), 2**12), 2**20))
+            return float(h), int(n)
+        h_fine = max(ref / 16.0, 1e-300)
+        n = self.grid_length or int(min(max(2 ** math.ceil(math.log2(top / h_fine + 1)), 2**12), 2**18))
+        return nice_bucket(top / n), int(n)
+
+    def _annual(self, a, l):
+        h, n = self.grid(a, l)
+        sev = self.severity
+        probs, tail = discretise(sev.sf, h, n, a, l, self.method)
+        agg, beyond = aggregate(self.frequency.pgf, probs, tail, self.padding)
+        grid = np.arange(n, dtype=float) * h
+        diag = {"bucket": h, "grid_length": n, "method": self.method, "grid_top": n * h, "beyond": beyond}
+        # analytic layered severity mean and second moment, for comparison with the grid
+        upper = a + l
+        m1 = _integrate_sf(sev, a, upper)
+        m2 = 2.0 * _integrate_sf(sev, a, upper, weight_from=a)
+        k = np.arange(n, dtype=float) * h
+        d_m1 = float(probs @ k + tail * n * h)
+        d_m2 = float(probs @ (k * k))
+        f = self.frequency
+        agg_mean = f.mean * m1
+        agg_var = f.mean * (m2 - m1 * m1) + f.variance * m1 * m1 if math.isfinite(m2) else math.inf
+        diag.update(
+            severity_mean=m1,
+            severity_mean_grid=d_m1,
+            severity_cv=math.sqrt(max(m2 - m1 * m1, 0)) / m1 if m1 > 0 and math.isfinite(m2) else math.nan,
+            severity_cv_grid=math.sqrt(max(d_m2 - d_m1 * d_m1, 0)) / d_m1 if d_m1 > 0 else math.nan,
+            mean=agg_mean,
+            cv=math.sqrt(agg_var) / agg_mean if agg_mean > 0 and math.isfinite(agg_var) else math.nan,
+        )
+        nz = agg > 0
+        dist = LossDistribution.from_atoms(grid[nz], agg[nz], beyond=beyond, top=n * h, sorted_unique=True) if beyond > 0 else LossDistribution.from_atoms(grid[nz], agg[nz], sorted_unique=True)
+        gm = dist.mean()
+        diag["mean_grid"] = gm
+        diag["cv_grid"] = dist.std() / gm if gm > 0 else math.nan
+        object.__setattr__(dist, "diagnostics", diag)
+        return dist
+
+
+def _integrate_sf(sev: Severity, a: float, b: float, weight_from: float | None = None) -> float:
+    """integral_a^b S(x) dx, or integral_a^b (x - weight_from) S(x) dx; inf when it diverges."""
+    if weight_from is None:
+        if not math.isfinite(b):
+            # E[(X - a)+] = E[X] - E[min(X, a)]
+            mean = sev.mean
+            if not math.isfinite(mean):
+                return math.inf
+            if a == 0:
+                return mean
+            return max(mean - _integrate_sf(sev, 0.0, a), 0.0)
+        fn = sev.dist.sf
+    else:
+        if not math.isfinite(b):
+            var = sev.variance
+            if not math.isfinite(var):
+                return math.inf
+            # E[(X-a)+^2]/2 from E[X^2]/2 minus the part below a, with the shift handled by quad on [0, a]
+            ex2 = var + sev.mean**2
+            below = integrate.quad(lambda x: x * sev.dist.sf(x), 0.0, a, limit=200)[0] if a > 0 else 0.0
+            tail1 = _integrate_sf(sev, a, math.inf)
+            return max(0.5 * ex2 - below - a * tail1, 0.0)
+
+        def fn(x):
+            return (x - weight_from) * sev.dist.sf(x)
+
+    pts = [p for p in (sev.ppf(0.5), sev.ppf(0.99)) if a < p < b]
+    val, _ = integrate.quad(fn, a, b, limit=200, points=pts or None)
+    return float(val)
+
+
+# --------------------------------------------------------------------------- samples and tables
+@dataclass(frozen=True, eq=False)
+class YearLossTable(LossModel):
+    """Simulated annual losses, one per year, with optional weights (a year loss table).
+
+    Holds annual totals only, so it takes aggregate layers; per-occurrence
+    terms need a :class:`YearEventTable`.
+    """
+
+    losses: np.ndarray
+    weights: np.ndarray | None = None
+    _cache: _Cache = field(default_factory=_Cache, repr=False, compare=False)
+    occurrence_terms = False
+
+    def __post_init__(self):
+        x = as_array(self.losses, "losses", low=0.0)
+        if x.size > MAX_SAMPLE_SIZE:
+            raise InputError("losses", f"at most {MAX_SAMPLE_SIZE:,} years, got {x.size:,}")
+        object.__setattr__(self, "losses", x)
+        if self.weights is not None:
+            w = as_array(self.weights, "weights", low=0.0)
+            if w.size != x.size:
+                raise InputError("weights", f"needs one weight per year ({x.size}), got {w.size}")
+            if not w.sum() > 0:
+                raise InputError("weights", "must not all be zero")
+            object.__setattr__(self, "weights", w)
+        object.__setattr__(self, "_data_nbytes", x.nbytes + (0 if self.weights is None else self.weights.nbytes))
+
+    def key(self) -> tuple:
+        return ("ylt", _array_digest(self.losses, self.weights))
+
+    def __eq__(self, other):
+        return isinstance(other, YearLossTable) and self.key() == other.key()
+
+    def __hash__(self):
+        return hash(self.key())
+
+    def describe(self) -> str:
+        return f"year loss table of {self.losses.size:,} years"
+
+    def _annual(self, a, l):
+        return LossDistribution.from_sample(self.losses, self.weights)
+
+
+@dataclass(frozen=True, eq=False)
+class ScenarioTable(LossModel):
+    """Discrete annual outcomes with probabilities summing to 1 (ties allowed)."""
+
+    outcomes: np.ndarray
+    probabilities: np.ndarray
+    _cache: _Cache = field(default_factory=_Cache, repr=False, compare=False)
+    occurrence_terms = False
+
+    def __post_init__(self):
+        x = as_array(self.outcomes, "outcomes", low=0.0)
+        p = as_array(self.probabilities, "probabilities", low=0.0)
+        if p.size != x.size:
+            raise InputError("probabilities", f"needs one probability per outcome ({x.size}), got {p.size}")
+        if p.max() > 1.0:
+            raise InputError("probabilities", f"each must lie in [0, 1], largest is {p.max():.6g}")
+        if abs(p.sum() - 1.0) > 1e-9:
+            raise InputError("probabilities", f"must sum to 1, they sum to {p.sum():.12g}")
+        object.__setattr__(self, "outcomes", x)
+        object.__setattr__(self, "probabilities", p)
+
+    def key(self) -> tuple:
+        return ("scen", _array_digest(self.outcomes, self.probabilities))
+
+    def __eq__(self, other):
+        return isinstance(other, ScenarioTable) and self.key() == other.key()
+
+    def __hash__(self):
+        return hash(self.key())
+
+    def describe(self) -> str:
+        return f"scenario table of {self.outcomes.size} outcomes"
+
+    def _annual(self, a, l):
+        return LossDistribution.from_atoms(self.outcomes, self.probabilities)
+
+
+@dataclass(frozen=True, eq=False)
+class YearEventTable(LossModel):
+    """Simulated events: ``years[i]`` is the simulated year of event ``i`` with loss ``losses[i]``.
+
+    Years are whole numbers 1..``n_years``; years with no event may be absent
+    (``n_years`` defaults to the largest year number). Per-occurrence terms
+    apply event by event before events are summed by year, which is how
+    catastrophe-model output is priced.
+    """
+
+    years: np.ndarray
+    losses: np.ndarray
+    n_years: int | None = None
+    _cache: _Cache = field(default_factory=_Cache, repr=False, compare=False)
+
+    def __post_init__(self):
+        x = as_array(self.losses, "losses", low=0.0, allow_empty=True)
+        y = as_array(self.years, "years", low=1.0, allow_empty=True)
+        if y.size != x.size:
+            raise InputError("years", f"needs one year per event loss ({x.size}), got {y.size}")
+        if x.size > MAX_SAMPLE_SIZE:
+            raise InputError("losses", f"at most {MAX_SAMPLE_SIZE:,} events, got {x.size:,}")
+        if y.size and np.any(y != np.floor(y)):
+            raise InputError("years", "year numbers must be whole numbers 1, 2, ...")
+        top = int(y.max()) if y.size else 0
+        n = top if self.n_years is None else as_float(self.n_years, "n_years", low=1.0, high=MAX_SAMPLE_SIZE)
+        if n != int(n) or n < 1:
+            raise InputError("n_years", f"must be a whole number >= 1, got {n!r}")
+        if top > n:
+            raise InputError("n_years", f"is {int(n)} but events are numbered up to year {top}")
+        object.__setattr__(self, "losses", x)
+        object.__setattr__(self, "years", y.astype(np.int64) - 1)  # zero-based index, for bincount
+        object.__setattr__(self, "n_years", int(n))
+        object.__setattr__(self, "_data_nbytes", x.nbytes + self.years.nbytes)
+
+    def key(self) -> tuple:
+        return ("yet", self.n_years, _array_digest(self.years, self.losses))
+
+    def __eq__(self, other):
+        return isinstance(other, YearEventTable) and self.key() == other.key()
+
+    def __hash__(self):
+        return hash(self.key())
+
+    def describe(self) -> str:
+        return f"year-event table of {self.losses.size:,} events in {self.n_years:,} years"
+
+    def _annual(self, a, l):
+        pay = self.losses - a if a > 0 else self.losses
+        if a > 0 or math.isfinite(l):
+            pay = np.clip(pay, 0.0, l)
+        totals = np.bincount(self.years, weights=pay, minlength=self.n_years)
+        return LossDistribution.from_sample(totals)

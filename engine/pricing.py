@@ -1,0 +1,177 @@
+"""Spectral prices and layer economics for whole towers in one call.
+
+``price_layers(model, layers, distortion)`` returns one row per layer with the
+quantities a pricing sheet shows. Conventions (all amounts before any
+expense or brokerage load, in the model's currency):
+
+* expected_loss   E[L], L the layer's annual loss after share
+* premium         rho_g(L) = integral of g(S_L(x)) dx (the technical, risk-loaded price)
+* margin          premium - expected_loss
+* loss_ratio      expected_loss / premium
+* rate_on_line    premium / (share * limit); limit is per occurrence for occurrence layers
+* collateral      share * largest annual loss of the layer (aggregate limit), inf if unbounded
+* capital         collateral - premium (the layer fully collateralised)
+* return_on_capital  margin / capital;  leverage  premium / capital
+* std, cv         of L; prob_attach P(L > 0); prob_exhaust P(layer pays its full
+                  aggregate limit), or P(annual loss >= one full limit) when the aggregate is unlimited
+* grid_error      largest possible error of premium from probability beyond a grid's top (0 for samples)
+
+Layers with the same per-occurrence terms share one annual distribution, so a
+tower of aggregate layers costs one model build plus O(n + k log n).
+"""
+from __future__ import annotations
+
+import math
+from collections.abc import Iterable, Mapping
+
+import numpy as np
+import pandas as pd
+
+from .distortions import Distortion, TVaRDistortion
+from .errors import InputError
+from .layers import Layer
+from .models import LossModel
+
+__all__ = ["price_layers", "layer_statistics", "price_layer", "COLUMNS"]
+
+COLUMNS = [
+    "layer", "attachment", "limit", "share", "expected_loss", "premium", "margin", "loss_ratio",
+    "rate_on_line", "collateral", "capital", "return_on_capital", "leverage", "std", "cv",
+    "prob_attach", "prob_exhaust", "grid_error",
+]
+
+
+def _as_layers(layers) -> list[Layer]:
+    if isinstance(layers, Layer):
+        return [layers]
+    if isinstance(layers, pd.DataFrame):
+        return _layers_from_frame(layers)
+    if not isinstance(layers, Iterable):
+        raise InputError("layers", f"expected a Layer or a list of layers, got {layers!r}")
+    out = list(layers)
+    if not out:
+        raise InputError("layers", "is empty")
+    for x in out:
+        if not isinstance(x, Layer):
+            raise InputError("layers", f"expected Layer objects, got {x!r}")
+    return out
+
+
+def _layers_from_frame(df: pd.DataFrame) -> list[Layer]:
+    """Layers from a table with columns attachment, limit and optionally share, basis, reinstatements."""
+    missing = {"attachment", "limit"} - set(df.columns)
+    if missing:
+        raise InputError("layers", f"table needs columns attachment and limit; missing {sorted(missing)}")
+    out = []
+    for row in df.itertuples(index=False):
+        r = row._asdict()
+        basis = str(r.get("basis", "occurrence"))
+        share = r.get("share", 1.0)
+        if basis == "aggregate":
+            out.append(Layer.aggregate(r["attachment"], r["limit"], share=share))
+        else:
+            rein = r.get("reinstatements")
+            rein = None if rein is None or (isinstance(rein, float) and math.isnan(rein)) else rein
+            out.append(Layer.occurrence(r["attachment"], r["limit"], reinstatements=rein, share=share))
+    if not out:
+        raise InputError("layers", "is empty")
+    return out
+
+
+def _groups(layers: list[Layer]):
+    groups: dict[tuple, list[int]] = {}
+    for i, lay in enumerate(layers):
+        groups.setdefault((lay.occ_attachment, lay.occ_limit), []).append(i)
+    return groups
+
+
+def price_layers(model: LossModel, layers, distortion) -> pd.DataFrame:
+    """Price every layer of ``layers`` on ``model`` with ``distortion`` (or a dict name -> distortion).
+
+    Returns a DataFrame with the columns in ``COLUMNS`` (one row per layer), and
+    a leading ``distortion`` column when several distortions are given.
+    """
+    if not isinstance(model, LossModel):
+        raise InputError("model", f"expected a loss model, got {model!r}")
+    lays = _as_layers(layers)
+    if isinstance(distortion, Mapping):
+        if not distortion:
+            raise InputError("distortion", "no distortions given")
+        frames = []
+        for name, g in distortion.items():
+            df = price_layers(model, lays, g)
+            df.insert(0, "distortion", name)
+            frames.append(df)
+        return pd.concat(frames, ignore_index=True)
+    if not isinstance(distortion, Distortion):
+        raise InputError("distortion", f"expected a distortion, got {distortion!r}")
+
+    k = len(lays)
+    el = np.empty(k); prem = np.empty(k); sd = np.empty(k); pa = np.empty(k); pe = np.empty(k); err = np.empty(k)
+    for (oa, ol), idx in _groups(lays).items():
+        u = model.annual(oa, ol)
+        a = np.array([lays[i].agg_attachment for i in idx])
+        lim = np.array([lays[i].agg_limit for i in idx])
+        share = np.array([lays[i].share for i in idx])
+        e = u.layer_integral(a, lim)
+        el[idx] = share * e
+        prem[idx] = share * u.layer_integral(a, lim, distortion)
+        sd[idx] = share * np.sqrt(np.maximum(u.layer_second_moment(a, lim) - e * e, 0.0))
+        pa[idx] = u.survival(a)
+        exhaust_at = np.where(np.isfinite(lim), a + lim, a + ol)
+        pe[idx] = np.where(np.isfinite(exhaust_at), u.survival_left(exhaust_at), 0.0)
+        err[idx] = share * np.maximum(u.beyond_bound(a, lim, distortion), u.beyond_bound(a, lim))
+    share = np.array([x.share for x in lays])
+    limit = np.array([x.limit for x in lays])
+    collateral = share * np.array([x.max_annual_loss for x in lays])
+    with np.errstate(divide="ignore", invalid="ignore"):
+        margin = prem - el
+        capital = collateral - prem
+        df = pd.DataFrame({
+            "layer": [x.describe() for x in lays],
+            "attachment": [x.attachment for x in lays],
+            "limit": limit,
+            "share": share,
+            "expected_loss": el,
+            "premium": prem,
+            "margin": margin,
+            "loss_ratio": np.where(prem > 0, el / prem, np.nan),
+            "rate_on_line": prem / (share * limit),
+            "collateral": collateral,
+            "capital": capital,
+            "return_on_capital": np.where(np.isfinite(capital) & (capital > 0), margin / capital, np.where(np.isinf(capital), 0.0, np.nan)),
+            "leverage": np.where(np.isfinite(capital) & (capital > 0), prem / capital, np.where(np.isinf(capital), 0.0, np.nan)),
+            "std": sd,
+            "cv": np.where(el > 0, sd / el, np.nan),
+            "prob_attach": pa,
+            "prob_exhaust": pe,
+            "grid_error": err,
+        })
+    return df
+
+
+def price_layer(model: LossModel, layer: Layer, distortion: Distortion) -> pd.Series:
+    """One layer's row of :func:`price_layers` as a Series."""
+    return price_layers(model, [layer], distortion).iloc[0]
+
+
+def layer_statistics(model: LossModel, layers, levels=(0.99, 0.996)) -> pd.DataFrame:
+    """Expected loss, std, cv, VaR and TVaR at each level, per layer (after share)."""
+    lays = _as_layers(layers)
+    lv = np.atleast_1d(np.asarray(levels, dtype=float))
+    if lv.size == 0 or np.any(~np.isfinite(lv)) or np.any((lv < 0) | (lv >= 1)):
+        raise InputError("levels", "probability levels must lie in [0, 1)")
+    rows = []
+    for lay in lays:
+        u = model.annual(lay.occ_attachment, lay.occ_limit)
+        a, lim, s = lay.agg_attachment, lay.agg_limit, lay.share
+        e = float(u.layer_integral(a, lim))
+        row = {"layer": lay.describe(), "expected_loss": s * e,
+               "std": s * math.sqrt(max(float(u.layer_second_moment(a, lim)) - e * e, 0.0))}
+        row["cv"] = row["std"] / row["expected_loss"] if row["expected_loss"] > 0 else math.nan
+        q = np.clip(u.quantile(lv) - a, 0.0, lim)
+        for p, v in zip(lv, np.atleast_1d(q)):
+            row[f"var_{p:g}"] = s * float(v)
+            row[f"tvar_{p:g}"] = s * float(u.layer_integral(a, lim, TVaRDistortion(p)))
+        rows.append(row)
+    return pd.DataFrame(rows)

@@ -97,7 +97,9 @@ class Layer:
 
     def describe(self) -> str:
         def f(x):
-            return "unlimited" if not math.isfinite(x) else f"{x:,.6g}"
+            if not math.isfinite(x):
+                return "unlimited"
+            return f"{x:,.0f}" if x == round(x) and abs(x) < 1e15 else f"{x:,.6g}"
 
         if self.has_occurrence_terms:
             text = f"{f(self.occ_limit)} xs {f(self.occ_attachment)} per occurrence"

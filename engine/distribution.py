@@ -28,6 +28,7 @@ __all__ = ["LossDistribution"]
 
 _IDENTITY = None  # a distortion argument of None means g(s) = s (the expected value)
 QUANTILE_TOL = 1e-12  # probability slack when inverting the cdf, so equal-weight samples hit exact order statistics
+_BLOCK = 1 << 16  # atoms per block in the top-down integral pass: bounds its temporaries and keeps them in cache
 
 
 @dataclass(frozen=True, eq=False)
@@ -146,31 +147,85 @@ class LossDistribution:
         Summed from the top down, so high layers keep their relative precision.
         """
         x = np.asarray(x, dtype=float)
-        v = self.values
-        lev = self._levels(distortion)
-        # segment i is [v[i], v[i+1]); the last segment carries level 0 (sf[-1] == 0).
-        if power == 0:
-            seg = lev[:-1] * np.diff(v)
-        else:
-            seg = lev[:-1] * 0.5 * (v[1:] ** 2 - v[:-1] ** 2)
-        above = np.zeros(v.size)  # above[i] = integral over [v[i], inf)
-        if seg.size:
-            above[:-1] = np.cumsum(seg[::-1])[::-1]
+        out = self._tail_integrals(x, ((distortion, power),))[0]
+        return out if out.ndim else float(out)
+
+    def _tail_integrals(self, x: np.ndarray, specs) -> list:
+        """One pass over the atoms for several integrands: ``[tail_integral(x, g, p) for g, p in specs]``.
+
+        The segments are visited from the top down in blocks of ``_BLOCK``
+        atoms, carrying the running sum from block to block, so the sums are
+        the same sequential top-down sums as one cumulative sum over the whole
+        array (bit for bit) while no temporary is larger than a block. Only
+        the running sums at the query points are kept, never a full array, so
+        pricing needs O(block) memory beyond the distribution itself; g is
+        evaluated once per block for each distinct distortion.
+        """
+        v, sf = self.values, self.sf
+        n = v.size
         xc = np.minimum(x, v[-1])
         i = np.searchsorted(v, xc, side="right") - 1
         inside = i >= 0
-        j = np.clip(i, 0, v.size - 1)
-        jn = np.clip(j + 1, 0, v.size - 1)
-        if power == 0:
-            part = lev[j] * (v[jn] - xc)
-            head = (v[0] - xc) + above[0]  # g(1) = 1 below the first atom
-        else:
-            part = lev[j] * 0.5 * (v[jn] ** 2 - xc**2)
-            head = 0.5 * (v[0] ** 2 - xc**2) + above[0]
-        part = np.where(jn > j, part, 0.0)
-        out = np.where(inside, above[jn] * (jn > j) + part, head)
-        out = np.where(x >= v[-1], 0.0, out)
-        return out if out.ndim else float(out)
+        j = np.clip(i, 0, n - 1)
+        jn = np.clip(j + 1, 0, n - 1)
+        # above[k] = integral over [v[k], inf) is needed at jn and at 0; g(S) on segment j at j.
+        q_above = np.append(jn.ravel(), 0)
+        q_lev = j.ravel()
+        order_a = np.argsort(q_above, kind="stable")
+        qa_sorted = q_above[order_a]
+        order_l = np.argsort(q_lev, kind="stable")
+        ql_sorted = q_lev[order_l]
+        k = len(specs)
+        above_q = [np.zeros(q_above.size) for _ in range(k)]  # above[n - 1] = 0: no segment there
+        lev_q = [np.zeros(q_lev.size) for _ in range(k)]  # g(S) at j = n - 1 multiplies a zero-width part
+        carry = [0.0] * k
+        hi = n - 1  # segments are 0 .. n - 2; segment s is [v[s], v[s + 1])
+        while hi > 0:
+            lo = max(hi - _BLOCK, 0)
+            levels = {}
+            width = None
+            squares = None
+            for t, (g, power) in enumerate(specs):
+                key = id(g)
+                if key not in levels:
+                    levels[key] = sf[lo:hi] if g is None else np.broadcast_to(np.asarray(g(sf[lo:hi]), dtype=float), (hi - lo,))
+                lev = levels[key]
+                if power == 0:
+                    if width is None:
+                        width = v[lo + 1 : hi + 1] - v[lo:hi]
+                    seg = lev * width
+                else:
+                    if squares is None:
+                        squares = v[lo + 1 : hi + 1] ** 2 - v[lo:hi] ** 2
+                    seg = lev * 0.5 * squares
+                run = np.empty(hi - lo + 1)
+                run[0] = carry[t]
+                run[1:] = seg[::-1]
+                np.cumsum(run, out=run)  # run[hi - s] = above[s] for s in [lo, hi)
+                carry[t] = run[-1]
+                a0, a1 = np.searchsorted(qa_sorted, (lo, hi), side="left")
+                if a1 > a0:
+                    above_q[t][order_a[a0:a1]] = run[hi - qa_sorted[a0:a1]]
+                l0, l1 = np.searchsorted(ql_sorted, (lo, hi), side="left")
+                if l1 > l0:
+                    lev_q[t][order_l[l0:l1]] = lev[ql_sorted[l0:l1] - lo]
+            hi = lo
+        results = []
+        m = jn.size
+        for t, (g, power) in enumerate(specs):
+            above_jn = above_q[t][:m].reshape(jn.shape)
+            above0 = above_q[t][m]
+            lev_j = lev_q[t].reshape(j.shape)
+            if power == 0:
+                part = lev_j * (v[jn] - xc)
+                head = (v[0] - xc) + above0  # g(1) = 1 below the first atom
+            else:
+                part = lev_j * 0.5 * (v[jn] ** 2 - xc**2)
+                head = 0.5 * (v[0] ** 2 - xc**2) + above0
+            part = np.where(jn > j, part, 0.0)
+            out = np.where(inside, above_jn * (jn > j) + part, head)
+            results.append(np.where(x >= v[-1], 0.0, out))
+        return results
 
     def layer_integral(self, attachment, limit, distortion=None) -> np.ndarray:
         """integral over [a, a + l] of g(S(x)) dx: the distorted price of the layer (a, l).
@@ -178,17 +233,42 @@ class LossDistribution:
         With ``distortion=None`` this is the layer's expected loss. Vectorised:
         ``attachment`` and ``limit`` broadcast together; ``limit`` may be inf.
         """
-        a = np.asarray(attachment, dtype=float)
-        top = a + np.asarray(limit, dtype=float)
-        return self.tail_integral(a, distortion) - self.tail_integral(top, distortion)
+        return self.layer_profile(attachment, limit, (distortion,), second_moment=False)[2][0]
 
     def layer_second_moment(self, attachment, limit) -> np.ndarray:
         """E[min(max(X - a, 0), l)**2] = 2 * integral_a^{a+l} (x - a) S(x) dx."""
+        return self.layer_profile(attachment, limit, ())[1]
+
+    def layer_profile(self, attachment, limit, distortions=(), *, second_moment: bool = True):
+        """(expected loss, second moment, [price under each distortion]) of the layers (a, l), in one pass.
+
+        Each entry is exactly what :meth:`layer_integral` and
+        :meth:`layer_second_moment` return for the same arguments; the second
+        moment is None when ``second_moment`` is False. Shapes broadcast as in
+        :meth:`layer_integral`.
+        """
         a = np.asarray(attachment, dtype=float)
         top = a + np.asarray(limit, dtype=float)
-        first = self.tail_integral(a) - self.tail_integral(top)
-        second = self.tail_integral(a, power=1) - self.tail_integral(top, power=1)
-        return np.maximum(2.0 * (second - a * first), 0.0)
+        a, top = np.broadcast_arrays(a, top)
+        shape = a.shape
+        specs = [(None, 0)] + ([(None, 1)] if second_moment else []) + [(g, 0) for g in distortions if g is not None]
+        xs = np.concatenate([a.ravel(), top.ravel()])
+        res = self._tail_integrals(xs, specs)
+        m = a.size
+
+        def diff(r):
+            out = (r[:m] - r[m:]).reshape(shape)
+            return out if out.ndim else float(out)
+
+        first = diff(res[0])
+        sm = None
+        if second_moment:
+            second = diff(res[1])
+            sm = np.maximum(2.0 * (second - a * first), 0.0)
+            sm = sm if sm.ndim else float(sm)
+        rest = iter(res[2 if second_moment else 1 :])
+        prices = [first if g is None else diff(next(rest)) for g in distortions]
+        return first, sm, prices
 
     # ----------------------------------------------------------------- whole-variable statistics
     def mean(self) -> float:

@@ -76,15 +76,7 @@ class LossDistribution:
         """Empirical distribution of a sample (e.g. simulated annual losses), optionally weighted."""
         x = as_array(losses, argument, low=0.0)
         if weights is None:
-            xs = np.sort(x, kind="stable")
-            keep = np.empty(xs.size, dtype=bool)
-            keep[0] = True
-            np.not_equal(xs[1:], xs[:-1], out=keep[1:])
-            starts = np.flatnonzero(keep)
-            v = xs[starts]
-            # counts above each atom, exact integers until the final division
-            above = xs.size - np.append(starts[1:], xs.size)
-            sf = above / xs.size
+            v, sf = _empirical(x)
             return cls(v, sf, 0.0, math.inf, {"sample_size": int(x.size)})
         w = as_array(weights, "weights", low=0.0)
         if w.size != x.size:
@@ -331,6 +323,47 @@ class LossDistribution:
     def __repr__(self):
         extra = f", beyond={self.beyond:.3g} at {self.top:.6g}" if self.beyond > 0 else ""
         return f"LossDistribution({self.size} atoms on [{self.values[0]:.6g}, {self.values[-1]:.6g}], mean={self.mean():.6g}{extra})"
+
+
+def _empirical(x: np.ndarray):
+    """Distinct values of an equal-weight sample and P(X > value), sorting once and lean on memory.
+
+    The sorted copy is the only full-size float array made besides the
+    survival probabilities: when the sample has ties it is compacted in place
+    block by block (so the atoms are a view of it, copied only when ties
+    halve the sample), and the survival
+    probabilities (count above) / n are computed block by block from the
+    positions of the last element of each run of ties. Peak memory is about
+    2.1 times the sample's size (sorted copy, survival, a one-byte mask).
+    """
+    n = x.size
+    xs = np.sort(x)  # equal values are interchangeable, so any sort gives the same array; numpy's default one is the fastest
+    last = np.empty(n, dtype=bool)  # last element of each run of equal values
+    np.not_equal(xs[1:], xs[:-1], out=last[:-1])
+    last[-1] = True
+    u = int(np.count_nonzero(last))
+    if u == n:
+        del last
+        sf = np.arange(n - 1, -1, -1, dtype=np.float64)  # counts above each atom: exact integers in float64
+        sf /= n
+        return xs, sf
+    sf = np.empty(u)
+    pos = 0
+    for lo in range(0, n, _BLOCK):
+        hi = min(lo + _BLOCK, n)
+        mask = last[lo:hi]
+        ends = np.flatnonzero(mask)
+        c = ends.size
+        if c:
+            # counts above: n - (index of the run's last element + 1), exact integers until the division
+            sf[pos : pos + c] = (n - 1 - lo - ends) / n
+            xs[pos : pos + c] = xs[lo:hi][ends]  # pos <= lo: never overwrites a value not yet read
+            pos += c
+    del last
+    v = xs[:u]
+    if 2 * u <= n:
+        v = v.copy()  # release the rest of the sorted copy
+    return v, sf
 
 
 def _merge_ties(v: np.ndarray, p: np.ndarray, presorted: bool = False):

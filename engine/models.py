@@ -393,8 +393,14 @@ class YearEventTable(LossModel):
         return f"year-event table of {self.losses.size:,} events in {self.n_years:,} years"
 
     def _annual(self, a, l):
-        pay = self.losses - a if a > 0 else self.losses
-        if a > 0 or math.isfinite(l):
-            pay = np.clip(pay, 0.0, l)
+        # at most one event-length temporary: the payments, clipped in place
+        if a > 0:
+            pay = self.losses - a
+            np.clip(pay, 0.0, l, out=pay)
+        elif math.isfinite(l):
+            pay = np.clip(self.losses, 0.0, l)
+        else:
+            pay = self.losses
         totals = np.bincount(self.years, weights=pay, minlength=self.n_years)
+        del pay  # freed before the totals are sorted
         return LossDistribution.from_sample(totals)

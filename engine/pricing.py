@@ -90,6 +90,10 @@ def price_layers(model: LossModel, layers, distortion) -> pd.DataFrame:
 
     Returns a DataFrame with the columns in ``COLUMNS`` (one row per layer), and
     a leading ``distortion`` column when several distortions are given.
+    Everything that does not depend on the distortion (expected loss, std,
+    probabilities) is computed once, and each group of layers sharing
+    per-occurrence terms is priced under every distortion in one pass over its
+    distribution.
     """
     if not isinstance(model, LossModel):
         raise InputError("model", f"expected a loss model, got {model!r}")
@@ -97,39 +101,52 @@ def price_layers(model: LossModel, layers, distortion) -> pd.DataFrame:
     if isinstance(distortion, Mapping):
         if not distortion:
             raise InputError("distortion", "no distortions given")
-        frames = []
-        for name, g in distortion.items():
-            df = price_layers(model, lays, g)
-            df.insert(0, "distortion", name)
-            frames.append(df)
-        return pd.concat(frames, ignore_index=True)
-    if not isinstance(distortion, Distortion):
-        raise InputError("distortion", f"expected a distortion, got {distortion!r}")
+        names, gs = list(distortion.keys()), list(distortion.values())
+    else:
+        names, gs = None, [distortion]
+    for g in gs:
+        if not isinstance(g, Distortion):
+            raise InputError("distortion", f"expected a distortion, got {g!r}")
 
-    k = len(lays)
-    el = np.empty(k); prem = np.empty(k); sd = np.empty(k); pa = np.empty(k); pe = np.empty(k); err = np.empty(k)
+    k, d = len(lays), len(gs)
+    el = np.empty(k); sd = np.empty(k); pa = np.empty(k); pe = np.empty(k)
+    prem = np.empty((d, k)); err = np.empty((d, k))
     for (oa, ol), idx in _groups(lays).items():
         u = model.annual(oa, ol)
         a = np.array([lays[i].agg_attachment for i in idx])
         lim = np.array([lays[i].agg_limit for i in idx])
         share = np.array([lays[i].share for i in idx])
-        e = u.layer_integral(a, lim)
+        e, second, prices = u.layer_profile(a, lim, gs)
         el[idx] = share * e
-        prem[idx] = share * u.layer_integral(a, lim, distortion)
-        sd[idx] = share * np.sqrt(np.maximum(u.layer_second_moment(a, lim) - e * e, 0.0))
+        sd[idx] = share * np.sqrt(np.maximum(second - e * e, 0.0))
         pa[idx] = u.survival(a)
         exhaust_at = np.where(np.isfinite(lim), a + lim, a + ol)
         pe[idx] = np.where(np.isfinite(exhaust_at), u.survival_left(exhaust_at), 0.0)
-        err[idx] = share * np.maximum(u.beyond_bound(a, lim, distortion), u.beyond_bound(a, lim))
+        plain = u.beyond_bound(a, lim)
+        for t, g in enumerate(gs):
+            prem[t, idx] = share * prices[t]
+            err[t, idx] = share * np.maximum(u.beyond_bound(a, lim, g), plain)
     share = np.array([x.share for x in lays])
     limit = np.array([x.limit for x in lays])
     collateral = share * np.array([x.max_annual_loss for x in lays])
+    described = [x.describe() for x in lays]
+    attachment = [x.attachment for x in lays]
+    frames = [_frame(described, attachment, limit, share, collateral, el, prem[t], sd, pa, pe, err[t]) for t in range(d)]
+    if names is None:
+        return frames[0]
+    for name, df in zip(names, frames):
+        df.insert(0, "distortion", name)
+    return pd.concat(frames, ignore_index=True)
+
+
+def _frame(described, attachment, limit, share, collateral, el, prem, sd, pa, pe, err) -> pd.DataFrame:
+    """The priced table for one distortion (columns as in ``COLUMNS``)."""
     with np.errstate(divide="ignore", invalid="ignore"):
         margin = prem - el
         capital = collateral - prem
         df = pd.DataFrame({
-            "layer": [x.describe() for x in lays],
-            "attachment": [x.attachment for x in lays],
+            "layer": described,
+            "attachment": attachment,
             "limit": limit,
             "share": share,
             "expected_loss": el,

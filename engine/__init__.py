@@ -27,4 +27,6 @@ from .severity import (
     single_pareto, weibull,
 )
 
+from .capital import CapitalStandard, PortfolioPrice, capital_layers, make_capital_standard, price_portfolio
+
 __all__ = [name for name in dir() if not name.startswith("_")]

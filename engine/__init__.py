@@ -28,5 +28,9 @@ from .severity import (
 )
 
 from .capital import CapitalStandard, PortfolioPrice, capital_layers, make_capital_standard, price_portfolio
+from .calibration import (
+    CalibrationResult, ImpliedResult, calibrate, calibrate_to_return, implied_parameter, implied_parameters,
+    implied_spread, price_at_target,
+)
 
 __all__ = [name for name in dir() if not name.startswith("_")]

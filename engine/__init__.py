@@ -32,5 +32,6 @@ from .calibration import (
     CalibrationResult, ImpliedResult, calibrate, calibrate_to_return, implied_parameter, implied_parameters,
     implied_spread, price_at_target,
 )
+from .allocation import allocate_to_layers, allocate_to_units, natural_allocation
 
 __all__ = [name for name in dir() if not name.startswith("_")]

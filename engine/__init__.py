@@ -33,5 +33,6 @@ from .calibration import (
     implied_spread, price_at_target,
 )
 from .allocation import allocate_to_layers, allocate_to_units, natural_allocation
+from .sensitivity import price_sensitivities
 
 __all__ = [name for name in dir() if not name.startswith("_")]

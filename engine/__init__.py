@@ -35,5 +35,6 @@ from .calibration import (
 from .allocation import allocate_to_layers, allocate_to_units, natural_allocation
 from .sensitivity import price_sensitivities
 from .reinstatements import ReinstatementPrice, price_with_reinstatements, reinstatement_factor
+from .loads import gross_premium, with_gross_columns
 
 __all__ = [name for name in dir() if not name.startswith("_")]

@@ -297,7 +297,7 @@ class LossDistribution:
         if math.isfinite(limit) and hi < v.size:
             sf = sf.copy()
             sf[-1] = 0.0
-        diag = dict(self.diagnostics)
+        diag = self.diagnostics.copy()
         if self.beyond > 0 and self.top < attachment + limit:
             diag["beyond_unbounded"] = True
         return LossDistribution(vals, sf, self.beyond if self.top < attachment + limit else 0.0,
@@ -307,7 +307,7 @@ class LossDistribution:
         """Distribution of factor * X (factor > 0), e.g. a participation share."""
         if not factor > 0:
             raise InputError("share", f"must be positive, got {factor!r}")
-        return LossDistribution(self.values * factor, self.sf, self.beyond, self.top * factor, dict(self.diagnostics))
+        return LossDistribution(self.values * factor, self.sf, self.beyond, self.top * factor, self.diagnostics.copy())
 
     def beyond_bound(self, attachment, limit, distortion=None) -> np.ndarray:
         """Largest error of a layer integral caused by mass held at ``top``."""

@@ -207,31 +207,116 @@ class FrequencySeverity(LossModel):
         agg, beyond = aggregate(self.frequency.pgf, probs, tail, self.padding)
         grid = np.arange(n, dtype=float) * h
         diag = {"bucket": h, "grid_length": n, "method": self.method, "grid_top": n * h, "beyond": beyond}
-        # analytic layered severity mean and second moment, for comparison with the grid
-        upper = a + l
-        m1 = _integrate_sf(sev, a, upper)
-        m2 = 2.0 * _integrate_sf(sev, a, upper, weight_from=a)
-        k = np.arange(n, dtype=float) * h
+        k = grid
         d_m1 = float(probs @ k + tail * n * h)
         d_m2 = float(probs @ (k * k))
-        f = self.frequency
-        agg_mean = f.mean * m1
-        agg_var = f.mean * (m2 - m1 * m1) + f.variance * m1 * m1 if math.isfinite(m2) else math.inf
-        diag.update(
-            severity_mean=m1,
-            severity_mean_grid=d_m1,
-            severity_cv=math.sqrt(max(m2 - m1 * m1, 0)) / m1 if m1 > 0 and math.isfinite(m2) else math.nan,
-            severity_cv_grid=math.sqrt(max(d_m2 - d_m1 * d_m1, 0)) / d_m1 if d_m1 > 0 else math.nan,
-            mean=agg_mean,
-            cv=math.sqrt(agg_var) / agg_mean if agg_mean > 0 and math.isfinite(agg_var) else math.nan,
-        )
+        diag["severity_mean_grid"] = d_m1
+        diag["severity_cv_grid"] = math.sqrt(max(d_m2 - d_m1 * d_m1, 0)) / d_m1 if d_m1 > 0 else math.nan
         nz = agg > 0
         dist = LossDistribution.from_atoms(grid[nz], agg[nz], beyond=beyond, top=n * h, sorted_unique=True) if beyond > 0 else LossDistribution.from_atoms(grid[nz], agg[nz], sorted_unique=True)
         gm = dist.mean()
         diag["mean_grid"] = gm
         diag["cv_grid"] = dist.std() / gm if gm > 0 else math.nan
-        object.__setattr__(dist, "diagnostics", diag)
+        # the analytic layered severity moments (for comparison with the grid) need adaptive
+        # quadrature for a per-occurrence layer, which costs more than the whole grid: computed
+        # on first read of the diagnostics
+        object.__setattr__(dist, "diagnostics", _Diagnostics(diag, _Once(lambda: _analytic_moments(sev, self.frequency, a, l)), _DIAGNOSTIC_KEYS))
         return dist
+
+
+_DIAGNOSTIC_KEYS = (
+    "bucket", "grid_length", "method", "grid_top", "beyond", "severity_mean", "severity_mean_grid", "severity_cv",
+    "severity_cv_grid", "mean", "cv", "mean_grid", "cv_grid",
+)
+
+
+def _analytic_moments(sev: Severity, f: Frequency, a: float, l: float) -> dict:
+    """Mean and cv of the layered severity min(max(X - a, 0), l) and of the annual total, by quadrature."""
+    upper = a + l
+    m1 = _integrate_sf(sev, a, upper)
+    m2 = 2.0 * _integrate_sf(sev, a, upper, weight_from=a)
+    agg_mean = f.mean * m1
+    agg_var = f.mean * (m2 - m1 * m1) + f.variance * m1 * m1 if math.isfinite(m2) else math.inf
+    return {
+        "severity_mean": m1,
+        "severity_cv": math.sqrt(max(m2 - m1 * m1, 0)) / m1 if m1 > 0 and math.isfinite(m2) else math.nan,
+        "mean": agg_mean,
+        "cv": math.sqrt(agg_var) / agg_mean if agg_mean > 0 and math.isfinite(agg_var) else math.nan,
+    }
+
+
+class _Once:
+    """A function of no arguments evaluated at most once (thread-safe); copies of a diagnostics dict share it."""
+
+    def __init__(self, fn):
+        self._fn, self._value, self._lock = fn, None, threading.Lock()
+
+    def __call__(self) -> dict:
+        with self._lock:
+            if self._fn is not None:
+                self._value, self._fn = self._fn(), None
+            return self._value
+
+
+class _Diagnostics(dict):
+    """A plain dict of diagnostics whose costly entries are filled in on first use.
+
+    Any read, write or copy to a plain dict first merges the entries returned
+    by ``pending`` (computed once) and restores the key ``order``; after that
+    it is an ordinary dict. ``copy()`` stays lazy, so derived distributions
+    (layers, shares) do not force the computation. Pickles as a plain dict.
+    """
+
+    __slots__ = ("_pending", "_order")
+
+    def __init__(self, eager: dict, pending: _Once, order: tuple):
+        super().__init__(eager)
+        self._pending, self._order = pending, order
+
+    def _raw(self) -> dict:
+        # the stored entries, read through the views (which never call the overridden methods)
+        return dict(zip(dict.keys(self), dict.values(self)))
+
+    def _resolve(self):
+        pending = self._pending
+        if pending is not None:
+            merged = self._raw()
+            merged.update(pending())
+            ordered = {k: merged[k] for k in self._order if k in merged}
+            ordered.update(merged)
+            dict.clear(self)
+            dict.update(self, ordered)
+            self._pending = None
+
+    def copy(self):
+        if self._pending is None:
+            return self._raw()
+        return _Diagnostics(self._raw(), self._pending, self._order)
+
+    def __reduce__(self):
+        self._resolve()
+        return (dict, (self._raw(),))
+
+
+def _resolving(name):
+    base = getattr(dict, name)
+
+    def method(self, *args, **kwargs):
+        self._resolve()
+        return base(self, *args, **kwargs)
+
+    method.__name__ = name
+    method.__doc__ = base.__doc__
+    return method
+
+
+for _name in (
+    "__getitem__", "__contains__", "__iter__", "__reversed__", "__len__", "__repr__", "__eq__", "__ne__", "__or__",
+    "__ror__", "__ior__", "__setitem__", "__delitem__", "get", "keys", "values", "items", "pop", "popitem",
+    "setdefault", "update", "clear",
+):
+    setattr(_Diagnostics, _name, _resolving(_name))
+del _name
 
 
 @functools.lru_cache(maxsize=256)

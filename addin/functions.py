@@ -691,11 +691,13 @@ def _per_layer(value, argument, k, default, *, low, blanks=False, inf_words=Fals
     v = cells.vector(value, argument, low=low, default=None, allow_blanks=blanks, allow_inf_words=inf_words)
     if v is None:
         return np.full(k, default, dtype=float)
+    if blanks and v.size < k <= len(cells._flatten(value)):
+        v = np.concatenate([v, np.full(k - v.size, math.nan)])  # trailing empty cells: not set for those layers
     if v.size == 1:
         return np.full(k, v[0] if not np.isnan(v[0]) else default)
     if v.size != k:
         raise CellInputError(argument, f"needs one value per layer ({k}) or a single value, got {v.size}")
-    return v
+    return np.where(np.isnan(v), default, v)
 
 
 def _columns(value, available: list[str]) -> list[str]:

@@ -48,13 +48,15 @@ memory: each entry counts the model's data and the distributions it has cached
 (``cache_nbytes()``) plus :data:`ENTRY_OVERHEAD`. The cap defaults to 1 GiB
 (:data:`DEFAULT_CAP_BYTES`); set it with :func:`set_memory_cap` or the
 environment variable ``LAYERWISE_CACHE_MB`` (read at import). When the total
-exceeds the cap, least-recently-used entries give memory back in this order,
-so that the cheapest things to recover go first: (1) their cached
-distributions are dropped (recomputed transparently when needed), (2)
-frequency-severity models are evicted (rebuilt transparently from their spec
-text), (3) data-backed models are evicted (their references then give #REF!).
-The entry in use is never evicted, so one model larger than the cap is kept
-while it is the most recent. All cache operations hold one ``RLock``; models
+exceeds the cap, memory is given back in this order, least recently used
+first within each step, so that the cheapest things to recover go first:
+(1) other models' cached distributions are dropped (recomputed transparently
+when needed), (2) other frequency-severity models are evicted (rebuilt
+transparently from their spec text), (3) the cached distributions of the
+model in use are dropped, (4) other data-backed models are evicted (their
+references then give #REF! until their builder cell is recalculated). The
+entry in use is never evicted, so one model larger than the cap is kept while
+it is the most recent. All cache operations hold one ``RLock``; models
 are built under it, so concurrent cells build a given model once. Because keys
 are content, eviction can only cause a rebuild or a clear error, never a stale
 number. :func:`build_count` reports how many times each model was built.
@@ -714,33 +716,38 @@ class ModelCache:
             self._enforce(keep=ref)
 
     def _enforce(self, keep):
+        """Give memory back until within the cap, cheapest to recover first (see the module docstring)."""
         if self._total <= self._cap:
             return
-        # 1. least recently used first: drop cached distributions (recomputed on demand)
+        # 1. least recently used first: drop other models' cached distributions (recomputed on demand)
         for ref, e in list(self._entries.items()):
             if self._total <= self._cap:
                 return
-            if ref != keep and isinstance(e.obj, LossModel) and e.nbytes > ENTRY_OVERHEAD:
-                e.obj.clear_cache()
-                n = _measure(e.obj)
-                self._total += n - e.nbytes
-                e.nbytes = n
-        # 2. then rebuildable entries, 3. then data-backed ones
-        for rebuildable in (True, False):
-            for ref, e in list(self._entries.items()):
-                if self._total <= self._cap:
-                    return
-                if ref != keep and e.rebuildable == rebuildable:
-                    del self._entries[ref]
-                    self._total -= e.nbytes
-                    self._evictions += 1
-        # 4. only the entry in use is left: give back its cached distributions
-        e = self._entries.get(keep)
-        if e is not None and isinstance(e.obj, LossModel):
+            if ref != keep:
+                self._shrink(e)
+        # 2. evict other rebuildable entries (rebuilt from their spec text on demand)
+        self._evict(keep, rebuildable=True)
+        # 3. drop the cached distributions of the entry in use
+        if self._total > self._cap and keep in self._entries:
+            self._shrink(self._entries[keep])
+        # 4. only then evict data-backed entries (their references give #REF! until rebuilt)
+        self._evict(keep, rebuildable=False)
+
+    def _shrink(self, e: _Entry):
+        if isinstance(e.obj, LossModel) and e.nbytes > ENTRY_OVERHEAD:
             e.obj.clear_cache()
             n = _measure(e.obj)
             self._total += n - e.nbytes
             e.nbytes = n
+
+    def _evict(self, keep, *, rebuildable: bool):
+        for ref, e in list(self._entries.items()):
+            if self._total <= self._cap:
+                return
+            if ref != keep and e.rebuildable == rebuildable:
+                del self._entries[ref]
+                self._total -= e.nbytes
+                self._evictions += 1
 
     # -- inspection ----------------------------------------------------------
     def __contains__(self, ref: str) -> bool:

@@ -67,7 +67,7 @@ from layerwise.engine.errors import InputError, as_float
 __all__ = [
     "MISSING", "ERROR_CODES", "CellInputError", "MissingReference", "UpstreamError", "ErrorInfo",
     "error_value", "parse_error", "is_error_value", "is_empty", "single", "number", "integer", "text",
-    "choice", "boolean", "vector", "to_cell", "table_to_cells",
+    "choice", "boolean", "vector", "grid", "to_cell", "table_to_cells",
 ]
 
 MISSING = object()  # "no default": the argument is required
@@ -159,8 +159,28 @@ def is_empty(value) -> bool:
     if isinstance(value, float) and math.isnan(value):
         return False  # NaN is a bad number, not an empty cell
     if isinstance(value, (list, tuple, np.ndarray)):
-        return all(is_empty(v) for v in _flatten(value))
+        return all(is_empty(v) for v in grid(value)[2])
     return False
+
+
+def grid(value) -> tuple[int, int, list]:
+    """(rows, columns, values in row order) of a cell value or range, in one pass."""
+    if isinstance(value, np.ndarray):
+        value = value.tolist() if value.ndim else value.item()
+    if isinstance(value, (list, tuple)):
+        if not value:
+            return 0, 0, []
+        kinds = set(map(type, value))
+        if kinds <= {list, tuple}:
+            cols = max(map(len, value))
+            flat = [v for row in value for v in row]
+            if not set(map(type, flat)).isdisjoint({list, tuple, np.ndarray}):
+                flat = _flatten(flat)  # deeper nesting (not cell-shaped, but accepted)
+            return len(value), cols, flat
+        if kinds.isdisjoint({list, tuple, np.ndarray}):
+            return 1, len(value), list(value)
+        return len(value), 1, _flatten(value)  # a mix of rows and cells
+    return 1, 1, [value]
 
 
 def _flatten(value) -> list:
@@ -177,16 +197,6 @@ def _flatten(value) -> list:
     return [value]
 
 
-def _shape(value) -> tuple[int, int]:
-    if isinstance(value, np.ndarray):
-        return (value.shape + (1, 1))[:2] if value.ndim <= 2 else (int(np.prod(value.shape[:-1])), value.shape[-1])
-    if isinstance(value, (list, tuple)):
-        if value and all(isinstance(r, (list, tuple, np.ndarray)) for r in value):
-            return len(value), max(len(r) for r in value)
-        return 1, len(value)
-    return 1, 1
-
-
 def _unwrap(v):
     if isinstance(v, np.generic):
         return v.item()
@@ -196,12 +206,11 @@ def _unwrap(v):
 def single(value, argument: str):
     """The one value of a cell or 1x1 range (None when empty); raises when several cells are given."""
     if isinstance(value, (list, tuple, np.ndarray)):
-        flat = [v for v in _flatten(value)]
+        r, c, flat = grid(value)
         filled = [v for v in flat if not is_empty(v)]
         if not filled:
             return None
-        if len(flat) > 1 and len(filled) > 1:
-            r, c = _shape(value)
+        if len(filled) > 1:
             raise CellInputError(argument, f"expected a single cell, got a range of {r} x {c}")
         value = filled[0]
     value = _unwrap(value)
@@ -325,15 +334,12 @@ def vector(
     error naming its position. ``allow_inf_words`` accepts "unlimited" as +inf.
     """
     if isinstance(value, np.ndarray) and value.dtype.kind in "fiu" and value.ndim <= 2:
-        r, c = _shape(value)
-        if r > 1 and c > 1:
-            raise CellInputError(argument, f"expected one row or one column, got {r} rows x {c} columns")
+        r, c = (value.shape + (1, 1))[:2] if value.ndim == 2 else (1, value.size)
         flat = value.astype(np.float64).reshape(-1).tolist()
     else:
-        r, c = _shape(value)
-        if r > 1 and c > 1:
-            raise CellInputError(argument, f"expected one row or one column, got {r} rows x {c} columns")
-        flat = _flatten(value)
+        r, c, flat = grid(value)
+    if r > 1 and c > 1:
+        raise CellInputError(argument, f"expected one row or one column, got {r} rows x {c} columns")
     n = len(flat)
     while n and is_empty(flat[n - 1]):
         n -= 1

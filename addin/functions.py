@@ -170,6 +170,7 @@ def cell_function(fn):
     """
     name = fn.__name__
     sig = inspect.signature(fn)
+    params = set(sig.parameters)
 
     @functools.wraps(fn)
     def wrapper(*args, **kwargs):
@@ -180,7 +181,11 @@ def cell_function(fn):
         try:
             out = fn(*args, **kwargs)
         except InputError as exc:
-            return cells.error_value(getattr(exc, "code", "#VALUE!"), name, exc.argument, exc.message)
+            code = getattr(exc, "code", "#VALUE!")
+            if exc.argument not in params and "model" in params:
+                # e.g. a model's own bucket that does not fit the layer: report it under the model
+                return cells.error_value(code, name, "model", f"{exc.argument}: {exc.message}")
+            return cells.error_value(code, name, exc.argument, exc.message)
         except Exception as exc:  # never let a failure out of the bridge
             log.exception("%s failed", name)
             return cells.error_value("#VALUE!", name, "internal", f"{type(exc).__name__}: {exc}")
@@ -231,12 +236,11 @@ def _params(values, first: str = "param"):
 
 def _texts(value, argument: str) -> list[str]:
     """Texts of a one-row or one-column range (trailing empties dropped)."""
-    flat = cells._flatten(value)
+    r, c, flat = cells.grid(value)
     while flat and cells.is_empty(flat[-1]):
         flat.pop()
     if not flat:
         raise CellInputError(argument, "is empty")
-    r, c = cells._shape(value)
     if r > 1 and c > 1:
         raise CellInputError(argument, f"expected one row or one column, got {r} rows x {c} columns")
     out = []
@@ -533,7 +537,7 @@ def LW_DISTORTION_TABLE(s, g, require_concave=None):
 def LW_DISTORTION_VALUE(distortion, s):
     """Distorted probability g(s) for a survival probability s (or a range of them, same shape)."""
     g = handles.distortion_from(distortion)
-    if isinstance(s, (list, tuple, np.ndarray)) and len(cells._flatten(s)) > 1:
+    if isinstance(s, (list, tuple, np.ndarray)) and len(cells.grid(s)[2]) > 1:
         rows = s.tolist() if isinstance(s, np.ndarray) else list(s)
         if not all(isinstance(r, (list, tuple)) for r in rows):
             rows = [[v] for v in rows]  # a 1-D list: one column
@@ -691,7 +695,7 @@ def _per_layer(value, argument, k, default, *, low, blanks=False, inf_words=Fals
     v = cells.vector(value, argument, low=low, default=None, allow_blanks=blanks, allow_inf_words=inf_words)
     if v is None:
         return np.full(k, default, dtype=float)
-    if blanks and v.size < k <= len(cells._flatten(value)):
+    if blanks and v.size < k <= len(cells.grid(value)[2]):
         v = np.concatenate([v, np.full(k - v.size, math.nan)])  # trailing empty cells: not set for those layers
     if v.size == 1:
         return np.full(k, v[0] if not np.isnan(v[0]) else default)

@@ -485,6 +485,7 @@ def _bad_cases(fs_ref, ylt_ref):
         ("LW_TOWER", (fs_ref, 0.0, [[1e6], [2e6]], "wang 0.4", None, None, None, None, "premium, profit"), "#VALUE!", "columns"),
         ("LW_TOWER", (fs_ref, 0.0, [[1e6], [2e6]], [[None]]), "#VALUE!", "distortion"),
         ("LW_TOWER", (ylt_ref, 0.0, [[1e6], [2e6]], "wang 0.4", None, None, [[1.0], [1.0]]), "#VALUE!", "reinstatements"),
+        ("LW_PREMIUM", ("freqsev(poisson 2, lognormal 1e6 1.5, bucket=300000)", 0.0, 1e6, "wang 0.4"), "#VALUE!", "model"),
         ("LW_MODEL_INFO", ("freqsev(poisson 2)",), "#VALUE!", "model"),
         ("LW_MODEL_INFO", ("scenarios#" + "f" * 24,), "#REF!", "model"),
     ]
@@ -544,3 +545,37 @@ def test_no_function_ever_raises(data):
         assert isinstance(out, (str, float, bool, list)), (name, args, out)
         if isinstance(out, float):
             assert math.isfinite(out)
+
+
+# =========================================================================== headless recalculation
+def test_functions_work_in_headless_recalculation(tmp_path, fs, annual_losses):
+    recalc = pytest.importorskip("layerwise.addin.recalc")
+    openpyxl = pytest.importorskip("openpyxl")
+    from openpyxl.worksheet.formula import ArrayFormula
+
+    wb = openpyxl.Workbook()
+    ws = wb.active
+    ws.title = "Sheet1"
+    x = annual_losses[:40]
+    for i, v in enumerate(x, start=1):
+        ws.cell(i, 1, float(v))
+    ws["C1"] = '=LW_MODEL_FREQSEV("poisson 2","lognormal 1e6 1.5")'
+    ws["C2"] = '=LW_PREMIUM(C1, 1000000, 4000000, "wang 0.4", "", "", 1)'
+    ws["C3"] = '=LW_PREMIUM(C1, -1, 4000000, "wang 0.4")'
+    ws["C4"] = "=LW_MODEL_YEARLOSS(A1:A60)"
+    ws["C5"] = "=LW_EXPECTED_LOSS(C4, 1000000, 2000000)"
+    ws["C6"] = '=LW_PREMIUM(C1, 1000000, 4000000, C3)'
+    ws["E1"] = ArrayFormula("E1:F3", '=LW_TOWER(C1, 0, {1000000;2000000}, "ph 0.8", "", "", "", "", "layer,premium")')
+    wb.save(tmp_path / "book.xlsx")
+    run = recalc.recalculate(tmp_path / "book.xlsx", tmp_path / "priced.xlsx", functions=FUNCTIONS)
+    v = {k.split("!")[1]: val for k, val in run.values.items()}
+    ref, model = fs
+    assert v["C1"] == ref
+    same(v["C2"], engine_row(model, lw.Layer.occurrence(1e6, 4e6, reinstatements=1), lw.WangTransform(0.4))["premium"], "LW_PREMIUM")
+    assert cells.parse_error(v["C3"]).argument == "attachment"
+    assert v["C4"].startswith("yearloss#")  # (cells round-trip through the file to within an ulp, so no hash check)
+    assert v["C5"] == pytest.approx(np.mean(np.clip(x - 1e6, 0, 2e6)), rel=1e-9)
+    assert cells.parse_error(v["C6"]).code == "#VALUE!" and v["C3"] in v["C6"]
+    frame = lw.price_layers(model, lw.stack([1e6, 2e6]), lw.ProportionalHazard(0.8))
+    assert [v["E1"], v["F1"]] == ["layer", "premium"]
+    assert v["E2"] == frame["layer"][0] and v["F3"] == pytest.approx(frame["premium"][1], rel=1e-12)

@@ -16,6 +16,7 @@ wrap-around of mass beyond the padded grid by exp(-TILT).
 """
 from __future__ import annotations
 
+import functools
 import math
 
 import numpy as np
@@ -73,6 +74,21 @@ def discretise(sf, h: float, n: int, attachment: float = 0.0, limit: float = mat
     return probs, float(sd[-1])
 
 
+@functools.lru_cache(maxsize=8)
+def _tilt_factors(n: int, size: int):
+    theta = TILT / size
+    k = np.arange(n + 1, dtype=float)
+    down, up = np.exp(-theta * k), np.exp(theta * k[:n])
+    down.flags.writeable = False
+    up.flags.writeable = False
+    return down, up
+
+
+def _tilts(n: int, size: int):
+    """(exp(-theta k) for k = 0..n, exp(theta k) for k = 0..n-1), theta = TILT / size; remembered up to 2**20 points."""
+    return _tilt_factors(n, size) if n <= 2**20 else _tilt_factors.__wrapped__(n, size)
+
+
 def aggregate(pgf, probs: np.ndarray, tail: float, padding: int = 2):
     """Compound distribution on the same grid: returns ``(agg, beyond)``.
 
@@ -84,15 +100,13 @@ def aggregate(pgf, probs: np.ndarray, tail: float, padding: int = 2):
     """
     n = probs.size
     size = n * max(int(padding), 2)
-    theta = TILT / size
-    f = np.zeros(size)
-    f[:n] = probs
-    f[n] = tail
-    k = np.arange(size, dtype=float)
-    tilt = np.exp(-theta * k)
+    down, up = _tilts(n, size)
+    f = np.zeros(size)  # only the first n + 1 points carry mass: only they need tilting
+    np.multiply(probs, down[:n], out=f[:n])
+    f[n] = tail * down[n]
     # exact: sum_k e^{-theta k} p_k z^k = P_N(phi(z e^{-theta})), so untilting recovers p_k
-    a = np.fft.irfft(pgf(np.fft.rfft(f * tilt)), size)[:n]
-    a *= np.exp(theta * k[:n])
+    a = np.fft.irfft(pgf(np.fft.rfft(f)), size)[:n]
+    a *= up
     a[a < ROUNDOFF] = 0.0
     total = float(a.sum())
     if total > 1.0:

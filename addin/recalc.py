@@ -38,8 +38,8 @@ Results are converted back:
 * a 2-D list/tuple or numpy array fills an array formula's range (entered with
   openpyxl's ``ArrayFormula``): as in Excel, a result too large is cropped, a
   single row or column is repeated, and missing cells show ``#N/A``. A 1-D
-  result is one row. A multi-cell result in an ordinary one-cell formula gives
-  ``#VALUE!``, with a message saying to enter it as an array formula;
+  result is one row. In an ordinary one-cell formula a multi-cell result shows
+  its top-left value, as in Excel before dynamic arrays;
 * any other type, or an exception raised by the function, stops the run with a
   :class:`RecalcError` naming the cell and the function; nothing is written.
 """
@@ -543,7 +543,8 @@ class Recalculation:
         formula = self._formulas.get(node)
         value = self._value(node)
         if key in seen:
-            rows.append(TraceRow(depth, node, formula, value, "see above"))
+            note = f"part of array formula {block}; see above" if block else "see above"
+            rows.append(TraceRow(depth, node, formula, value, note))
             return
         seen.add(key)
         if formula is None:
@@ -704,10 +705,11 @@ def _read_book(book):
     """Formula text, array blocks and constants from the loaded openpyxl book."""
     formulas_by_cell, blocks, block_shapes, constants, sheets = {}, {}, {}, {}, []
     for ws in book.worksheets:
-        sheets.append((ws.title, ws.max_row, ws.max_column))
+        max_row, max_col = ws.max_row, ws.max_column
         in_blocks = set()
         for anchor, area in ws.array_formulae.items():
             r1, c1, r2, c2 = _parse_area(area)
+            max_row, max_col = max(max_row, r2), max(max_col, c2)  # openpyxl only knows the anchor
             block = _range_name(ws.title, r1, c1, r2, c2)
             text = "{" + _formula_text(ws[anchor].value) + "}"
             if (r1, c1) != (r2, c2):
@@ -720,6 +722,7 @@ def _read_book(book):
                     if (r1, c1) != (r2, c2):
                         blocks[name] = block
                     in_blocks.add((r, c))
+        sheets.append((ws.title, max_row, max_col))
         for row in ws.iter_rows():
             for cell in row:
                 if not hasattr(cell, "column") or cell.value is None or (cell.row, cell.column) in in_blocks:

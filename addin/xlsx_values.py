@@ -94,29 +94,31 @@ def _number_text(x: float) -> str:
     return repr(float(x))
 
 
-def encode_value(value, *, formula: bool):
+def encode_value(value, *, formula: bool, prefix: str = ""):
     """Return (cell type attribute or None, inner XML) for a value.
 
     Formula cells carry strings as ``t="str"`` with a ``<v>``; plain cells carry
-    them as inline strings, which need no shared-string table entry.
+    them as inline strings, which need no shared-string table entry. ``prefix``
+    is the sheet's namespace prefix with its colon ("" for the default).
     """
+    v, p = f"{prefix}v", prefix
     code = getattr(value, "code", None)
     if isinstance(code, str):
-        return "e", f"<v>{_escape(code)}</v>"
+        return "e", f"<{v}>{_escape(code)}</{v}>"
     if value is None:
         return None, ""
     if isinstance(value, bool):
-        return "b", f"<v>{int(value)}</v>"
+        return "b", f"<{v}>{int(value)}</{v}>"
     if isinstance(value, (int, float)):
         x = float(value)
         if not math.isfinite(x):
-            return "e", "<v>#NUM!</v>"
-        return None, f"<v>{_number_text(x)}</v>"
+            return "e", f"<{v}>#NUM!</{v}>"
+        return None, f"<{v}>{_number_text(x)}</{v}>"
     if isinstance(value, str):
         if formula:
-            return "str", f"<v>{_escape(value)}</v>"
+            return "str", f"<{v}>{_escape(value)}</{v}>"
         space = ' xml:space="preserve"' if value != value.strip() else ""
-        return "inlineStr", f"<is><t{space}>{_escape(value)}</t></is>"
+        return "inlineStr", f"<{p}is><{p}t{space}>{_escape(value)}</{p}t></{p}is>"
     raise TypeError(f"cannot store a {type(value).__name__} in a cell: {value!r}")
 
 
@@ -131,7 +133,7 @@ def _patch_cell(prefix, attrs, inner, value, formula):
     f_match = _F_RE.search(inner)
     if formula and f_match is None:
         raise ValueError(f"cell {_attr(attrs, 'r')} has no formula in the sheet XML")
-    t, v = encode_value(value, formula=bool(f_match))
+    t, v = encode_value(value, formula=bool(f_match), prefix=prefix)
     rest = _VALUE_RE.sub("", _F_RE.sub("", inner))  # e.g. <extLst>, kept after the value
     head = f_match.group(0) if f_match else ""
     _set_attr(attrs, "t", t)
@@ -171,7 +173,7 @@ def _patch_row(prefix, row_num, row_attrs, inner, updates):
         value, formula = updates[c]
         if formula:
             raise ValueError(f"formula cell {get_column_letter(c)}{row_num} is missing from the sheet XML")
-        t, v = encode_value(value, formula=False)
+        t, v = encode_value(value, formula=False, prefix=prefix)
         attrs = [["r", f"{get_column_letter(c)}{row_num}"]]
         _set_attr(attrs, "t", t)
         xml = _cell_xml(prefix, attrs, v)

@@ -72,7 +72,7 @@ __all__ = [
 
 MISSING = object()  # "no default": the argument is required
 
-# Excel's error codes (longest first so that "#N/A" does not shadow nothing longer).
+# Excel's error codes, longer ones first so the regular expression tries them first.
 ERROR_CODES = (
     "#GETTING_DATA", "#CONNECT!", "#BLOCKED!", "#UNKNOWN!", "#DIV/0!", "#VALUE!", "#SPILL!", "#FIELD!",
     "#NULL!", "#NAME?", "#CALC!", "#BUSY!", "#REF!", "#NUM!", "#N/A",

@@ -332,6 +332,8 @@ def LW_SEVERITY(family, param1, param2=None, param3=None, param4=None):
             where = f"param{names.index(arg) + 1}"
         elif arg.startswith("parameter "):
             where = "param" + arg.split()[-1]
+        elif arg in ("severity", "name"):
+            where = "family"  # e.g. a scipy distribution not supported on [0, inf)
         else:
             where = "param1"
         raise CellInputError(where, f"{arg}: {exc.message}") from None

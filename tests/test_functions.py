@@ -407,6 +407,7 @@ def _bad_cases(fs_ref, ylt_ref):
         ("LW_SEVERITY", ("lognormal", 5.0, None, 3.0), "#VALUE!", "param3"),
         ("LW_SEVERITY", ("lognormall", 5.0, 1.0), "#VALUE!", "family"),
         ("LW_SEVERITY", (None, 5.0, 1.0), "#VALUE!", "family"),
+        ("LW_SEVERITY", ("norm", 5.0, 1.0), "#VALUE!", "family"),
         ("LW_SEVERITY", ("pareto", math.nan, 1.0), "#VALUE!", "param1"),
         ("LW_SEVERITY", ("weibull", 2.0, math.inf), "#VALUE!", "param2"),
         ("LW_FREQUENCY", ("poisson", -1.0), "#VALUE!", "param1"),

@@ -17,7 +17,7 @@ import math
 from dataclasses import dataclass, field
 
 import numpy as np
-from scipy import stats
+from scipy import special, stats
 
 from .errors import InputError, as_float
 
@@ -47,6 +47,7 @@ class Severity:
     name: str
     params: tuple
     dist: object = field(compare=False, repr=False)
+    fast_sf: object = field(default=None, compare=False, repr=False)  # same values as dist.sf, without scipy's checks
 
     def __post_init__(self):
         low = float(self.dist.support()[0])
@@ -58,7 +59,7 @@ class Severity:
         return f"{self.name}({inner})"
 
     def sf(self, x):
-        return self.dist.sf(x)
+        return self.dist.sf(x) if self.fast_sf is None else self.fast_sf(x)
 
     def cdf(self, x):
         return self.dist.cdf(x)
@@ -115,7 +116,34 @@ def lognormal(mean=None, cv=None, *, mu=None, sigma=None) -> Severity:
         sigma = math.sqrt(math.log1p(cv * cv))
         mu = math.log(mean) - 0.5 * sigma * sigma
         params = (("mean", mean), ("cv", cv))
-    return Severity("lognormal", params, stats.lognorm(s=sigma, scale=math.exp(mu)))
+    scale = math.exp(mu)
+    return Severity("lognormal", params, stats.lognorm(s=sigma, scale=scale), _LognormalSF(sigma, scale))
+
+
+class _LognormalSF:
+    """The lognormal survival function Phi(-log(x / scale) / sigma), as scipy computes it.
+
+    scipy's ``lognorm.sf`` spends more than half of its time validating
+    arguments and masking the support; on the grids this one gives the same
+    numbers bit for bit (1 for x <= 0, NaN for NaN) in less than half the time.
+    """
+
+    __slots__ = ("sigma", "scale")
+
+    def __init__(self, sigma: float, scale: float):
+        self.sigma, self.scale = sigma, scale
+
+    def __call__(self, x):
+        y = np.asarray(x, dtype=np.float64) / self.scale
+        with np.errstate(divide="ignore", invalid="ignore"):
+            out = special.ndtr(-(np.log(y) / self.sigma))
+        if out.ndim:
+            out[y < 0] = 1.0
+            return out
+        return np.float64(1.0) if y < 0 else out[()]
+
+    def __reduce__(self):
+        return (_LognormalSF, (self.sigma, self.scale))
 
 
 def pareto(shape, scale) -> Severity:

@@ -63,7 +63,6 @@ import tqdm as _tqdm
 from openpyxl.utils.cell import (
     column_index_from_string,
     get_column_letter,
-    quote_sheetname,
     range_boundaries,
 )
 
@@ -320,10 +319,30 @@ class _Model(_fx.ExcelModel):
     def __init__(self, run: _Run):
         super().__init__()
         self._run = run
+        self._covered: dict[int, set] = {}
+
+    def _in_array_block(self, cell, formula_references) -> bool:
+        """Whether ``cell`` is a non-anchor cell of an array formula range."""
+        covered = self._covered.get(id(formula_references))
+        if covered is None:
+            covered = set()
+            for anchor, ref in formula_references.items():
+                area = _parse_area(ref)
+                if area:
+                    r1, c1, r2, c2 = area
+                    covered.update((r, c) for r in range(r1, r2 + 1) for c in range(c1, c2 + 1))
+                    covered.discard(tuple(reversed(range_boundaries(anchor)[:2])))
+            self._covered[id(formula_references)] = covered
+        return (getattr(cell, "row", None), getattr(cell, "column", None)) in covered
 
     def compile_cell(self, cell, context, references, formula_references):
         crd = formula_references.get(cell.coordinate, cell.coordinate)
         self._run.current = f"'[{context.get('filename', '')}]{context.get('sheet', '')}'!{crd}"
+        if cell.data_type == "e" and self._in_array_block(cell, formula_references):
+            # Files saved by Excel or LibreOffice cache the array's values in its other
+            # cells; formulas would compile a cached error (#N/A) as a formula of its
+            # own and let it replace the array's result, so treat the cell as empty.
+            return self._compile_cell(cell.coordinate, None, context, False, references)
         try:
             return super().compile_cell(cell, context, references, formula_references)
         except Exception as exc:
@@ -735,6 +754,20 @@ def _read_book(book):
     return formulas_by_cell, blocks, block_shapes, constants, sheets
 
 
+def _check_sheet_names(book, formulas_by_cell):
+    """Refuse sheet names formulas cannot evaluate rather than write #REF! into the copy."""
+    for title in book.sheetnames:
+        if "'" not in title:
+            continue
+        quoted = title.replace("'", "''").upper()
+        for name, text in formulas_by_cell.items():
+            if name.startswith(title + "!") or quoted in text.upper():
+                raise RecalcError(
+                    f"sheet {title!r} has an apostrophe in its name, which the formulas library cannot "
+                    f"evaluate (cell {name}); rename the sheet"
+                )
+
+
 def _error_token(cell):
     if cell.data_type == "e" and cell.value in Error.errors:
         return Error.errors[cell.value]
@@ -837,6 +870,7 @@ def recalculate(source, target=None, *, functions: dict[str, Callable], override
                 raise RecalcError(f"cannot read {src} as a workbook: {type(exc).__name__}: {exc}") from exc
             written = _apply_overrides(book, overrides)
             formulas_by_cell, blocks, block_shapes, constants, sheets = _read_book(book)
+            _check_sheet_names(book, formulas_by_cell)
             real_tqdm, _fx.tqdm = _fx.tqdm, _quiet_tqdm()
             try:
                 model.pushes(*book.worksheets, context=context)

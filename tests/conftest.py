@@ -56,24 +56,37 @@ def soffice() -> str:
 
 
 @pytest.fixture
-def soffice_csv(soffice, tmp_path):
-    """A function converting an xlsx with LibreOffice, without recalculating, to {sheet name: rows}."""
+def soffice_convert(soffice, tmp_path):
+    """A function running ``soffice --convert-to FILTER`` on a file; returns the output folder."""
 
-    def convert(xlsx, sheets):
-        xlsx = Path(xlsx)
-        out = Path(tempfile.mkdtemp(prefix="csv-", dir=tmp_path))
+    def convert(path, convert_to):
+        out = Path(tempfile.mkdtemp(prefix="lo-out-", dir=tmp_path))
         # A private profile per run: concurrent or stale profiles lock each other out.
         profile = Path(tempfile.mkdtemp(prefix="lo-profile-", dir=tmp_path))
         cmd = [
             soffice, f"-env:UserInstallation={profile.as_uri()}", "--headless", "--norestore",
-            "--convert-to", _CSV_FILTER, "--outdir", str(out), str(xlsx),
+            "--convert-to", convert_to, "--outdir", str(out), str(path),
         ]
         done = subprocess.run(cmd, capture_output=True, text=True, timeout=180)
+        if not any(out.iterdir()):
+            raise AssertionError(f"soffice wrote nothing (exit {done.returncode}): {done.stdout} {done.stderr}")
+        return out
+
+    return convert
+
+
+@pytest.fixture
+def soffice_csv(soffice_convert):
+    """A function converting an xlsx with LibreOffice, without recalculating, to {sheet name: rows}."""
+
+    def convert(xlsx, sheets):
+        xlsx = Path(xlsx)
+        out = soffice_convert(xlsx, _CSV_FILTER)
         result = {}
         for sheet in sheets:
             path = out / f"{xlsx.stem}-{sheet}.csv"
             if not path.exists():
-                raise AssertionError(f"soffice wrote no {path.name}; output: {done.stdout} {done.stderr}")
+                raise AssertionError(f"soffice wrote no {path.name}; it wrote {sorted(p.name for p in out.iterdir())}")
             with open(path, newline="", encoding="utf-8") as fh:
                 result[sheet] = list(csv.reader(fh))
         return result

@@ -495,6 +495,30 @@ def test_priced_copy_of_a_second_run_is_the_same(book, tmp_path):
     assert dict(second.values) == dict(first.values)
 
 
+def test_rerun_of_a_copy_with_cached_errors_in_an_array(tmp_path):
+    # Excel and LibreOffice cache array values (here #N/A padding) in the block's
+    # other cells; they must not be taken for constants on the next run.
+    wb = openpyxl.Workbook()
+    wb.active["A1"] = 1
+    wb.active["C1"] = ArrayFormula("C1:D4", "=TOY_TABLE(A1)")
+    path = tmp_path / "pad.xlsx"
+    wb.save(path)
+    first = recalculate(path, functions=TOYS)
+    second = recalculate(first.target, tmp_path / "again.xlsx", functions=TOYS, overrides={"A1": 2})
+    assert second.values["Sheet!C4"] == CellError("#N/A")
+    assert [second.values[c] for c in ("Sheet!C1", "Sheet!D1", "Sheet!C3", "Sheet!D3")] == [2.0, 3.0, 6.0, 7.0]
+
+
+def test_sheet_name_with_apostrophe_is_refused(tmp_path):
+    wb = openpyxl.Workbook()
+    wb.active["A1"] = "='Bob''s data'!A1*2"
+    wb.create_sheet("Bob's data")["A1"] = 3
+    path = tmp_path / "apos.xlsx"
+    wb.save(path)
+    with pytest.raises(RecalcError, match="Bob's data.*apostrophe"):
+        recalculate(path, functions=TOYS)
+
+
 def test_bad_paths(tmp_path, book):
     with pytest.raises(SourceNotFoundError) as info:
         recalculate(tmp_path / "missing.xlsx", functions=TOYS)
@@ -579,6 +603,17 @@ def test_libreoffice_shows_cached_values(book, soffice_csv):
     assert lo("Inputs!B1") == "10" and lo("Calc!A2") == str(expected_values()["Calc!A2"]).rstrip("0").rstrip(".")
     # Inputs are there as well.
     assert lo("Inputs!A4") == "note"
+
+
+def test_workbook_saved_by_libreoffice(book, soffice_convert, tmp_path):
+    """A workbook written by another program (LibreOffice: shared strings, cached #NAME?, styles)."""
+    saved = soffice_convert(book, "xlsx") / "toy.xlsx"
+    result = recalculate(saved, tmp_path / "lo_priced.xlsx", functions=TOYS)
+    for cell, want in expected_values().items():
+        got = result.values[cell]
+        assert got == (pytest.approx(want) if isinstance(want, float) else want), cell
+    cached = openpyxl.load_workbook(result.target, data_only=True)
+    assert cached["Inputs"]["E3"].value == 8.5 and cached["Calc"]["A2"].value == pytest.approx(50.0)
 
 
 def test_libreoffice_sees_overrides(book, soffice_csv, tmp_path):

@@ -42,6 +42,30 @@ Results are converted back:
   its top-left value, as in Excel before dynamic arrays;
 * any other type, or an exception raised by the function, stops the run with a
   :class:`RecalcError` naming the cell and the function; nothing is written.
+
+Functions are called once per formula evaluation, in dependency order, on one
+thread. ``formulas`` may call a function whose arguments are all literals
+(``=F(2, 3)``) while loading the workbook rather than while calculating.
+
+What other programs show
+------------------------
+Excel and openpyxl (``data_only=True``) read every cached value. LibreOffice
+(checked with 7.4, which by default does not recalculate xlsx files on load)
+shows the cached numbers and texts of ordinary formula cells, but recomputes
+array formulas and formula cells whose cached value is a logical, an error or
+empty text; where those use custom functions it shows ``#NAME?``.
+
+Limits of ``formulas`` worked around or refused here
+----------------------------------------------------
+* Loading costs about 1.5-2 ms per formula (parsing and building a small
+  dispatcher for each), calculating about 0.5 ms: 1,000 formula cells take
+  2-3 seconds. The cycle search is skipped unless the graph has a cycle.
+* Sheet names containing an apostrophe cannot be evaluated; such workbooks are
+  refused with a :class:`RecalcError` rather than priced with ``#REF!``.
+* Cells of an array range that hold cached errors (as Excel and LibreOffice
+  save them) would be compiled as formulas of their own; they are ignored.
+* Circular references give ``#VALUE!`` with the message "circular reference";
+  no iterative calculation.
 """
 from __future__ import annotations
 

@@ -509,6 +509,35 @@ def test_rerun_of_a_copy_with_cached_errors_in_an_array(tmp_path):
     assert [second.values[c] for c in ("Sheet!C1", "Sheet!D1", "Sheet!C3", "Sheet!D3")] == [2.0, 3.0, 6.0, 7.0]
 
 
+def test_shared_formulas_as_excel_writes_them(tmp_path):
+    wb = openpyxl.Workbook()
+    ws = wb.active
+    for r in (1, 2, 3):
+        ws[f"A{r}"] = r
+        ws[f"B{r}"] = f"=TOY_SCALE(A{r}, 2)"
+    plain = tmp_path / "plain.xlsx"
+    wb.save(plain)
+    # Rewrite B1:B3 the way Excel stores a filled-down formula.
+    shared = tmp_path / "shared.xlsx"
+    with zipfile.ZipFile(plain) as src, zipfile.ZipFile(shared, "w") as dst:
+        for info in src.infolist():
+            data = src.read(info)
+            if info.filename == "xl/worksheets/sheet1.xml":
+                xml = data.decode()
+                xml = xml.replace("<f>TOY_SCALE(A1, 2)</f><v />", '<f t="shared" ref="B1:B3" si="0">TOY_SCALE(A1, 2)</f><v>0</v>')
+                for r in (2, 3):
+                    xml = xml.replace(f"<f>TOY_SCALE(A{r}, 2)</f><v />", '<f t="shared" si="0"/><v>0</v>')
+                assert xml.count('si="0"') == 3
+                data = xml.encode()
+            dst.writestr(info, data)
+    result = recalculate(shared, functions=TOYS)
+    assert [result.values[f"Sheet!B{r}"] for r in (1, 2, 3)] == [2.0, 4.0, 6.0]
+    with zipfile.ZipFile(result.target) as z:
+        xml = z.read("xl/worksheets/sheet1.xml").decode()
+    assert '<c r="B3"><f t="shared" si="0"/><v>6</v></c>' in xml
+    assert [c.value for c in openpyxl.load_workbook(result.target, data_only=True).active["B"]] == [2, 4, 6]
+
+
 def test_sheet_name_with_apostrophe_is_refused(tmp_path):
     wb = openpyxl.Workbook()
     wb.active["A1"] = "='Bob''s data'!A1*2"

@@ -131,20 +131,21 @@ def price_layers(model: LossModel, layers, distortion) -> pd.DataFrame:
     collateral = share * np.array([x.max_annual_loss for x in lays])
     described = [x.describe() for x in lays]
     attachment = [x.attachment for x in lays]
-    frames = [_frame(described, attachment, limit, share, collateral, el, prem[t], sd, pa, pe, err[t]) for t in range(d)]
     if names is None:
-        return frames[0]
-    for name, df in zip(names, frames):
-        df.insert(0, "distortion", name)
-    return pd.concat(frames, ignore_index=True)
+        return _frame({}, described, attachment, limit, share, collateral, el, prem[0], sd, pa, pe, err[0])
+    # one table for all distortions, block after block (building it once costs far less than concatenating)
+    lead = {"distortion": [name for name in names for _ in range(k)]}
+    return _frame(lead, described * d, attachment * d, np.tile(limit, d), np.tile(share, d), np.tile(collateral, d),
+                  np.tile(el, d), prem.ravel(), np.tile(sd, d), np.tile(pa, d), np.tile(pe, d), err.ravel())
 
 
-def _frame(described, attachment, limit, share, collateral, el, prem, sd, pa, pe, err) -> pd.DataFrame:
-    """The priced table for one distortion (columns as in ``COLUMNS``)."""
+def _frame(lead, described, attachment, limit, share, collateral, el, prem, sd, pa, pe, err) -> pd.DataFrame:
+    """The priced table (columns as in ``COLUMNS``, after the ``lead`` columns)."""
     with np.errstate(divide="ignore", invalid="ignore"):
         margin = prem - el
         capital = collateral - prem
         df = pd.DataFrame({
+            **lead,
             "layer": described,
             "attachment": attachment,
             "limit": limit,

@@ -153,7 +153,8 @@ class FrequencySeverity(LossModel):
         object.__setattr__(self, "padding", int(p))
 
     def key(self) -> tuple:
-        return ("fs", repr(self.frequency), repr(self.severity), self.bucket, self.grid_length, self.method, self.padding)
+        # exact parameters, not the rounded repr: models differing in the 7th digit are different models
+        return ("fs", self.frequency, self.severity.name, self.severity.params, self.bucket, self.grid_length, self.method, self.padding)
 
     def __eq__(self, other):
         return isinstance(other, FrequencySeverity) and self.key() == other.key()

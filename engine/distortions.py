@@ -50,8 +50,14 @@ class Distortion:
 
     def __call__(self, s):
         s = _unit(s)
+        if s.ndim:
+            low, high = s <= 0.0, s >= 1.0
         out = np.asarray(self._g(s), dtype=np.float64)
         # Pin the end points exactly: prices of certain amounts must be exact.
+        if s.ndim and out.shape == s.shape and out.flags.writeable and (out is s or out.flags.owndata):
+            out[low] = 0.0  # in place on the fresh result: several times faster than np.where on large arrays
+            out[high] = 1.0
+            return out
         out = np.where(s <= 0.0, 0.0, np.where(s >= 1.0, 1.0, out))
         return out if out.ndim else float(out)
 

@@ -163,6 +163,59 @@ class LossDistribution:
         # above[k] = integral over [v[k], inf) is needed at jn and at 0; g(S) on segment j at j.
         q_above = np.append(jn.ravel(), 0)
         q_lev = j.ravel()
+        if 2 <= n <= _BLOCK + 1:
+            above_q, lev_q = self._one_block(specs, q_above, np.minimum(q_lev, n - 2))
+        else:
+            above_q, lev_q = self._blocks(specs, q_above, q_lev)
+        results = []
+        m = jn.size
+        for t, (g, power) in enumerate(specs):
+            above_jn = above_q[t][:m].reshape(jn.shape)
+            above0 = above_q[t][m]
+            lev_j = lev_q[t].reshape(j.shape)
+            if power == 0:
+                part = lev_j * (v[jn] - xc)
+                head = (v[0] - xc) + above0  # g(1) = 1 below the first atom
+            else:
+                part = lev_j * 0.5 * (v[jn] ** 2 - xc**2)
+                head = 0.5 * (v[0] ** 2 - xc**2) + above0
+            part = np.where(jn > j, part, 0.0)  # also discards g(S) looked up for j = n - 1 (a zero-width part)
+            out = np.where(inside, above_jn * (jn > j) + part, head)
+            results.append(np.where(x >= v[-1], 0.0, out))
+        return results
+
+    def _one_block(self, specs, q_above, q_lev):
+        """Running top-down sums and levels at the query points when all segments fit one block."""
+        v, sf = self.values, self.sf
+        hi = v.size - 1
+        levels = {}
+        width = squares = None
+        above_q, lev_q = [], []
+        for g, power in specs:
+            key = id(g)
+            if key not in levels:
+                levels[key] = sf[:hi] if g is None else np.broadcast_to(np.asarray(g(sf[:hi]), dtype=float), (hi,))
+            lev = levels[key]
+            if power == 0:
+                if width is None:
+                    width = v[1:] - v[:-1]
+                seg = lev * width
+            else:
+                if squares is None:
+                    squares = v[1:] ** 2 - v[:-1] ** 2
+                seg = lev * 0.5 * squares
+            run = np.empty(hi + 1)
+            run[0] = 0.0
+            run[1:] = seg[::-1]
+            np.cumsum(run, out=run)  # run[hi - s] = above[s]; run[0] = above[n - 1] = 0
+            above_q.append(run[hi - q_above])
+            lev_q.append(lev[q_lev])
+        return above_q, lev_q
+
+    def _blocks(self, specs, q_above, q_lev):
+        """Running top-down sums and levels at the query points, block by block from the top."""
+        v, sf = self.values, self.sf
+        n = v.size
         order_a = np.argsort(q_above, kind="stable")
         qa_sorted = q_above[order_a]
         order_l = np.argsort(q_lev, kind="stable")
@@ -202,22 +255,7 @@ class LossDistribution:
                 if l1 > l0:
                     lev_q[t][order_l[l0:l1]] = lev[ql_sorted[l0:l1] - lo]
             hi = lo
-        results = []
-        m = jn.size
-        for t, (g, power) in enumerate(specs):
-            above_jn = above_q[t][:m].reshape(jn.shape)
-            above0 = above_q[t][m]
-            lev_j = lev_q[t].reshape(j.shape)
-            if power == 0:
-                part = lev_j * (v[jn] - xc)
-                head = (v[0] - xc) + above0  # g(1) = 1 below the first atom
-            else:
-                part = lev_j * 0.5 * (v[jn] ** 2 - xc**2)
-                head = 0.5 * (v[0] ** 2 - xc**2) + above0
-            part = np.where(jn > j, part, 0.0)
-            out = np.where(inside, above_jn * (jn > j) + part, head)
-            results.append(np.where(x >= v[-1], 0.0, out))
-        return results
+        return above_q, lev_q
 
     def layer_integral(self, attachment, limit, distortion=None) -> np.ndarray:
         """integral over [a, a + l] of g(S(x)) dx: the distorted price of the layer (a, l).

@@ -27,15 +27,24 @@ from scipy import integrate
 from .distribution import LossDistribution
 from .errors import InputError, as_array, as_float
 from .fourier import MAX_GRID_LENGTH, METHODS, aggregate, discretise, nice_bucket
-from .frequency import Frequency
+from .frequency import FixedCount, Frequency
 from .layers import Layer
-from .severity import Severity
+from .severity import Severity, integral
 
 __all__ = ["LossModel", "FrequencySeverity", "YearLossTable", "YearEventTable", "ScenarioTable", "MAX_SAMPLE_SIZE"]
 
 MAX_SAMPLE_SIZE = 50_000_000  # upper bound on work: rows of a loss table
 _CACHE_ENTRIES = 64
 BEYOND_TARGET = 1e-10  # the automatic grid aims to leave at most this probability beyond its top
+MAX_AUTO_POINTS = 2**18  # automatic ground-up grids: at most this many points, bucket at most about median / 16
+_FAR_TOP = 1e300
+
+
+def _pow2_points(span: float, low: int, high: int) -> int:
+    """Smallest power of 2 >= span + 1, clamped to [low, high] (no overflow for huge or NaN spans)."""
+    if not span < high:  # also NaN and inf
+        return high
+    return int(min(max(2 ** math.ceil(math.log2(span + 1.0)), low), high))
 
 
 class _Cache:
@@ -95,6 +104,17 @@ class LossModel:
 
     def clear_cache(self):
         self._cache.clear()
+
+    # -- numerical guards (grid models override these; see FrequencySeverity) --
+    infinite_mean = False  # True when an unlimited layer has an infinite expected loss
+
+    def annual_coarse(self, occ_attachment: float = 0.0, occ_limit: float = math.inf):
+        """The annual distribution on a grid twice as coarse, for error estimates (None: not a grid model)."""
+        return None
+
+    def beyond_tail(self, dist, occ_attachment, occ_limit, start, distortion=None) -> float:
+        """Estimate of the part of an unlimited layer's price above ``dist.top`` (inf: unknown)."""
+        return 0.0 if dist.beyond <= 0 else math.inf
 
     @property
     def mean(self) -> float:
@@ -183,28 +203,43 @@ class FrequencySeverity(LossModel):
                 m = max(int(n / (n_top + 1)), 1)
                 h = occ_limit / m
             return float(h), int(n)
-        # ground-up (or unlimited excess) severity
+        # ground-up (or unlimited excess) severity. Only finite moments are used: with an infinite
+        # variance (Pareto shape <= 2) or mean (shape <= 1) the top comes from a far quantile and the
+        # bucket from the median, never from the moments.
         mean_n, var_n = freq.mean, freq.variance
         ms, vs = sev.mean, sev.variance
         targets = []
         if math.isfinite(vs) and math.isfinite(ms):
             targets.append(mean_n * ms + 12.0 * math.sqrt(mean_n * vs + var_n * ms * ms))
-        big = float(sev.isf(BEYOND_TARGET / max(mean_n, 1.0)))
-        targets.append(big)
-        top = max(t for t in targets if math.isfinite(t)) + occ_attachment * 0.0
-        ref = float(sev.ppf(0.5)) if not math.isfinite(ms) else min(ms, float(sev.ppf(0.9)))
+        targets.append(float(sev.isf(BEYOND_TARGET / max(mean_n, 1.0))))
+        finite = [t for t in targets if math.isfinite(t) and t > 0]
+        upper = sev.upper
+        top = max(finite) if finite else (upper if math.isfinite(upper) and upper > 0 else _FAR_TOP)
+        top = min(top, _FAR_TOP)
+        med = float(sev.ppf(0.5))
+        ref = med if not math.isfinite(ms) else min(ms, float(sev.ppf(0.9)))
+        if not (math.isfinite(ref) and ref > 0):
+            ref = med if math.isfinite(med) and med > 0 else top / 2**12
         if self.bucket is not None:
             h = self.bucket
-            n = self.grid_length or int(min(max(2 ** math.ceil(math.log2(top / h + 1)), 2**12), 2**20))
+            n = self.grid_length or _pow2_points(top / h, 2**12, 2**20)
             return float(h), int(n)
         h_fine = max(ref / 16.0, 1e-300)
-        n = self.grid_length or int(min(max(2 ** math.ceil(math.log2(top / h_fine + 1)), 2**12), 2**18))
-        return nice_bucket(top / n), int(n)
+        if self.grid_length:
+            return nice_bucket(max(top / self.grid_length, 1e-300)), int(self.grid_length)
+        n = _pow2_points(top / h_fine, 2**12, MAX_AUTO_POINTS)
+        # a tail too long for the points is cut (mass beyond is held at the top and reported),
+        # rather than the bucket widened past the resolution of the body
+        return min(nice_bucket(max(top / n, 1e-300)), nice_bucket(h_fine)), int(n)
+
+    def _severity_grid(self, a, l):
+        h, n = self.grid(a, l)
+        probs, tail = discretise(self.severity.sf, h, n, a, l, self.method)
+        return h, n, probs, tail
 
     def _annual(self, a, l):
-        h, n = self.grid(a, l)
+        h, n, probs, tail = self._severity_grid(a, l)
         sev = self.severity
-        probs, tail = discretise(sev.sf, h, n, a, l, self.method)
         agg, beyond = aggregate(self.frequency.pgf, probs, tail, self.padding)
         grid = np.arange(n, dtype=float) * h
         diag = {"bucket": h, "grid_length": n, "method": self.method, "grid_top": n * h, "beyond": beyond}
@@ -213,36 +248,130 @@ class FrequencySeverity(LossModel):
         d_m2 = float(probs @ (k * k))
         diag["severity_mean_grid"] = d_m1
         diag["severity_cv_grid"] = math.sqrt(max(d_m2 - d_m1 * d_m1, 0)) / d_m1 if d_m1 > 0 else math.nan
-        nz = agg > 0
-        dist = LossDistribution.from_atoms(grid[nz], agg[nz], beyond=beyond, top=n * h, sorted_unique=True) if beyond > 0 else LossDistribution.from_atoms(grid[nz], agg[nz], sorted_unique=True)
+        dist = _grid_distribution(grid, agg, beyond, n * h)
         gm = dist.mean()
         diag["mean_grid"] = gm
         diag["cv_grid"] = dist.std() / gm if gm > 0 else math.nan
         # the analytic layered severity moments (for comparison with the grid) need adaptive
         # quadrature for a per-occurrence layer, which costs more than the whole grid: computed
         # on first read of the diagnostics
-        object.__setattr__(dist, "diagnostics", _Diagnostics(diag, _Once(lambda: _analytic_moments(sev, self.frequency, a, l)), _DIAGNOSTIC_KEYS))
+        freq, top = self.frequency, n * h
+        object.__setattr__(dist, "diagnostics", _Diagnostics(diag, _Once(lambda: _analytic_moments(sev, freq, a, l, top)), _DIAGNOSTIC_KEYS))
         return dist
+
+    # -- numerical guards ----------------------------------------------------
+    @property
+    def infinite_mean(self) -> bool:
+        """True when the severity's mean is infinite: an unlimited layer then has an infinite expected loss."""
+        return not self.severity.finite_mean
+
+    def annual_coarse(self, occ_attachment: float = 0.0, occ_limit: float = math.inf) -> LossDistribution:
+        """The annual distribution on the same grid with the severity discretised at twice the bucket.
+
+        Each severity probability at an odd grid point is split equally between
+        its neighbours (the mean-preserving discretisation of the fine one on a
+        grid of bucket 2h; the top atom, limit or tail, stays where it is). The
+        difference of a layer's price on this and on the fine distribution is
+        the discretisation error estimate of :func:`~layerwise.engine.pricing.price_layers`:
+        for a method of order p the fine grid's error is about that
+        difference / (2**p - 1), so the difference overstates it.
+        """
+        a, l = float(occ_attachment), float(occ_limit)
+        return self._cache.get(("coarse", a, l), lambda: self._coarse(a, l))
+
+    def _coarse(self, a, l):
+        h, n, probs, tail = self._severity_grid(a, l)
+        ext = np.append(probs, tail)
+        last = int(round(l / h)) if math.isfinite(l) else n  # the top atom: limit (or tail) stays put
+        odd = np.arange(1, last, 2)
+        half = 0.5 * ext[odd]
+        ext[odd] = 0.0
+        ext[odd - 1] += half
+        ext[odd + 1] += half
+        agg, beyond = aggregate(self.frequency.pgf, ext[:n], float(ext[n]), self.padding)
+        return _grid_distribution(np.arange(n, dtype=float) * h, agg, beyond, n * h)
+
+    def beyond_tail(self, dist: LossDistribution, occ_attachment: float, occ_limit: float, start: float, distortion=None) -> float:
+        """Estimate of integral_start^inf g(S(x)) dx for the part of an unlimited layer above ``dist.top``.
+
+        ``dist`` is this model's annual distribution for the per-occurrence
+        terms. With a finite per-occurrence limit l the annual loss exceeds x
+        only if more than x / l claims occur, so the result is the upper bound
+        l * sum over k >= floor(start / l) of g(P(N > k)). With an unlimited one
+        it is twice the single-big-jump estimate: above the top, S(x) is taken
+        as beyond * S_X(a + x) / S_X(a + top) (exact in the limit for
+        subexponential severities; the factor 2 covers the slower decay of the
+        sum of several claims for lighter tails). inf when the integral
+        diverges (e.g. proportional hazard r with Pareto shape alpha, r * alpha <= 1).
+        """
+        top, b = dist.top, dist.beyond
+        start = max(float(start), top)
+        if b <= 0 or not math.isfinite(top):
+            return 0.0
+        if math.isfinite(occ_limit):
+            return occ_limit * _count_tail_sum(self.frequency, math.floor(start / occ_limit), distortion)
+        sev = self.severity
+        s_top = float(sev.sf(occ_attachment + top))
+        if not s_top > 0:  # the severity ends (or underflows) below the top: the beyond mass is round-off
+            gb = float(distortion(b)) if distortion is not None else b
+            return gb * top / dist.size
+        upper = sev.upper - occ_attachment
+        return 2.0 * integral(lambda x: sev.sf(occ_attachment + x), start, upper, distortion, scale=b / s_top,
+                              first=start * 0.01)
+
+
+def _grid_distribution(grid, agg, beyond, top) -> LossDistribution:
+    nz = agg > 0
+    if beyond > 0:
+        return LossDistribution.from_atoms(grid[nz], agg[nz], beyond=beyond, top=top, sorted_unique=True)
+    return LossDistribution.from_atoms(grid[nz], agg[nz], sorted_unique=True)
+
+
+def _count_tail_sum(freq: Frequency, k0: int, distortion) -> float:
+    """An upper bound on sum_{k >= k0} g(P(N > k)): left-endpoint sums on geometrically growing blocks."""
+    if isinstance(freq, FixedCount):
+        return float(max(freq.n - k0, 0))  # P(N > k) = 1 for k < n, 0 after
+    ks = np.unique(np.floor(k0 + np.concatenate([[0.0], np.geomspace(1.0, 1e15, 4000)])))
+    with np.errstate(all="ignore"):
+        s = np.asarray(freq._scipy().sf(ks), dtype=float)
+    s = np.clip(np.nan_to_num(s, nan=0.0), 0.0, 1.0)
+    v = s if distortion is None else np.asarray(distortion(s), dtype=float)
+    if v[-1] > 0:
+        return math.inf
+    widths = np.diff(np.append(ks, ks[-1] + 1.0))
+    return float(np.sum(v * widths))
 
 
 _DIAGNOSTIC_KEYS = (
     "bucket", "grid_length", "method", "grid_top", "beyond", "severity_mean", "severity_mean_grid", "severity_cv",
-    "severity_cv_grid", "mean", "cv", "mean_grid", "cv_grid",
+    "severity_cv_grid", "severity_mean_to_top", "mean", "cv", "mean_grid", "cv_grid",
 )
 
 
-def _analytic_moments(sev: Severity, f: Frequency, a: float, l: float) -> dict:
-    """Mean and cv of the layered severity min(max(X - a, 0), l) and of the annual total, by quadrature."""
+def _analytic_moments(sev: Severity, f: Frequency, a: float, l: float, top: float = math.inf) -> dict:
+    """Mean and cv of the layered severity min(max(X - a, 0), l) and of the annual total, by quadrature.
+
+    ``severity_mean_to_top`` is the layered severity's mean capped at the grid top
+    (E[min(max(X - a, 0), l, top)]): what the grid's severity mean must match,
+    whatever lies beyond the top.
+    """
     upper = a + l
     m1 = _integrate_sf(sev, a, upper)
     m2 = 2.0 * _integrate_sf(sev, a, upper, weight_from=a)
     agg_mean = f.mean * m1
     agg_var = f.mean * (m2 - m1 * m1) + f.variance * m1 * m1 if math.isfinite(m2) else math.inf
+    if l <= top and math.isfinite(m1):
+        to_top = m1
+    else:
+        q = float(sev.ppf(0.01))
+        first = max(q * 1e-3, 1e-300) if math.isfinite(q) and q > a else max(abs(a), 1.0) * 1e-9
+        to_top = integral(sev.sf, a, min(a + min(l, top), sev.upper), first=first)
     return {
         "severity_mean": m1,
         "severity_cv": math.sqrt(max(m2 - m1 * m1, 0)) / m1 if m1 > 0 and math.isfinite(m2) else math.nan,
         "mean": agg_mean,
         "cv": math.sqrt(agg_var) / agg_mean if agg_mean > 0 and math.isfinite(agg_var) else math.nan,
+        "severity_mean_to_top": to_top,
     }
 
 

@@ -36,7 +36,8 @@ __all__ = ["LossModel", "FrequencySeverity", "YearLossTable", "YearEventTable", 
 MAX_SAMPLE_SIZE = 50_000_000  # upper bound on work: rows of a loss table
 _CACHE_ENTRIES = 64
 BEYOND_TARGET = 1e-10  # the automatic grid aims to leave at most this probability beyond its top
-MAX_AUTO_POINTS = 2**18  # automatic ground-up grids: at most this many points, bucket at most about median / 16
+MAX_AUTO_POINTS = 2**18  # automatic ground-up grids: at most this many points
+GROUND_UP_RESOLUTION = 64  # automatic ground-up grids: bucket at most about min(mean, 90% quantile) / 64 (median if no mean)
 _FAR_TOP = 1e300
 
 
@@ -141,7 +142,11 @@ class FrequencySeverity(LossModel):
     Aggregated by FFT on a uniform grid. ``bucket`` (grid spacing) and
     ``grid_length`` (number of grid points, a power of 2) are chosen from the
     distributions when not given: the ground-up grid reaches the point where
-    at most about 1e-10 of probability lies beyond; a per-occurrence layer's
+    at most about 1e-10 of probability lies beyond, with a bucket no coarser
+    than about min(mean, 90% quantile) / 64 (the median / 64 when the mean is
+    infinite) and at most 2**18 points, so a heavy tail that needs more is cut
+    and its mass beyond the top is reported (``beyond``) rather than the body
+    blurred; only finite moments are used. A per-occurrence layer's
     grid makes its limit a whole number of buckets and reaches
     limit * (99.9999999999% quantile of N). ``method`` is the severity
     discretisation ("moment" preserves means; "rounding").
@@ -224,7 +229,7 @@ class FrequencySeverity(LossModel):
             h = self.bucket
             n = self.grid_length or _pow2_points(top / h, 2**12, 2**20)
             return float(h), int(n)
-        h_fine = max(ref / 16.0, 1e-300)
+        h_fine = max(ref / GROUND_UP_RESOLUTION, 1e-300)
         if self.grid_length:
             return nice_bucket(max(top / self.grid_length, 1e-300)), int(self.grid_length)
         n = _pow2_points(top / h_fine, 2**12, MAX_AUTO_POINTS)

@@ -14,7 +14,22 @@ expense or brokerage load, in the model's currency):
 * return_on_capital  margin / capital;  leverage  premium / capital
 * std, cv         of L; prob_attach P(L > 0); prob_exhaust P(layer pays its full
                   aggregate limit), or P(annual loss >= one full limit) when the aggregate is unlimited
-* grid_error      largest possible error of premium from probability beyond a grid's top (0 for samples)
+* grid_error      error of premium from probability beyond a grid's top (0 for samples): for a
+                  layer that ends above the top, the largest possible one (g(beyond) x the part of
+                  the layer above the top); for an unlimited layer, an estimate of the price of the
+                  part above the top (see ``LossModel.beyond_tail``), inf when that may be infinite
+* discretisation_error  estimate of the error of premium and expected loss from the grid's bucket:
+                  the larger of their changes when the severity is discretised at twice the bucket
+                  (0 for samples and scenario tables)
+* warning         empty when the numbers are within their tolerances, else the reasons (text):
+                  grid_error > BEYOND_TOLERANCE x premium, discretisation_error >
+                  DISCRETISATION_TOLERANCE x premium, or a grid severity mean that differs from the
+                  exact one (up to the grid top) by more than MEAN_TOLERANCE relative. A table with a
+                  warning also issues a :class:`~layerwise.engine.errors.GridWarning`.
+
+An unlimited layer on a model with an infinite mean (a severity such as Pareto with
+shape <= 1 or generalized Pareto with shape >= 1) has an infinite expected loss and is
+refused with an InputError; a layer with a finite limit on the same model prices.
 
 Layers with the same per-occurrence terms share one annual distribution, so a
 tower of aggregate layers costs one model build plus O(n + k log n).
@@ -22,22 +37,28 @@ tower of aggregate layers costs one model build plus O(n + k log n).
 from __future__ import annotations
 
 import math
+import warnings
 from collections.abc import Iterable, Mapping
 
 import numpy as np
 import pandas as pd
 
 from .distortions import Distortion, TVaRDistortion
-from .errors import InputError
+from .errors import GridWarning, InputError
 from .layers import Layer
 from .models import LossModel
 
-__all__ = ["price_layers", "layer_statistics", "price_layer", "COLUMNS"]
+__all__ = ["price_layers", "layer_statistics", "price_layer", "COLUMNS", "BEYOND_TOLERANCE", "DISCRETISATION_TOLERANCE",
+           "MEAN_TOLERANCE"]
+
+BEYOND_TOLERANCE = 1e-6  # grid_error relative to premium
+DISCRETISATION_TOLERANCE = 1e-4  # discretisation_error relative to premium
+MEAN_TOLERANCE = 1e-4  # |grid severity mean / exact severity mean (to the grid top) - 1|
 
 COLUMNS = [
     "layer", "attachment", "limit", "share", "expected_loss", "premium", "margin", "loss_ratio",
     "rate_on_line", "collateral", "capital", "return_on_capital", "leverage", "std", "cv",
-    "prob_attach", "prob_exhaust", "grid_error",
+    "prob_attach", "prob_exhaust", "grid_error", "discretisation_error", "warning",
 ]
 
 
@@ -109,8 +130,10 @@ def price_layers(model: LossModel, layers, distortion) -> pd.DataFrame:
             raise InputError("distortion", f"expected a distortion, got {g!r}")
 
     k, d = len(lays), len(gs)
+    _check_finite_mean(model, lays)
     el = np.empty(k); sd = np.empty(k); pa = np.empty(k); pe = np.empty(k)
-    prem = np.empty((d, k)); err = np.empty((d, k))
+    prem = np.empty((d, k)); err = np.empty((d, k)); disc = np.zeros((d, k))
+    mean_note = [""] * k
     for (oa, ol), idx in _groups(lays).items():
         u = model.annual(oa, ol)
         a = np.array([lays[i].agg_attachment for i in idx])
@@ -122,24 +145,105 @@ def price_layers(model: LossModel, layers, distortion) -> pd.DataFrame:
         pa[idx] = u.survival(a)
         exhaust_at = np.where(np.isfinite(lim), a + lim, a + ol)
         pe[idx] = np.where(np.isfinite(exhaust_at), u.survival_left(exhaust_at), 0.0)
-        plain = u.beyond_bound(a, lim)
+        plain = _beyond(model, u, oa, ol, a, lim, None)
         for t, g in enumerate(gs):
             prem[t, idx] = share * prices[t]
-            err[t, idx] = share * np.maximum(u.beyond_bound(a, lim, g), plain)
+            err[t, idx] = share * np.maximum(_beyond(model, u, oa, ol, a, lim, g), plain)
+        coarse = model.annual_coarse(oa, ol)
+        if coarse is not None:
+            ec, _, pc = coarse.layer_profile(a, lim, gs, second_moment=False)
+            with np.errstate(invalid="ignore"):
+                de = np.abs(np.asarray(e) - ec)
+                for t in range(d):
+                    disc[t, idx] = share * np.nan_to_num(np.maximum(np.abs(np.asarray(prices[t]) - pc[t]), de), nan=np.inf)
+        note = _mean_note(u.diagnostics)
+        for i in idx:
+            mean_note[i] = note
     share = np.array([x.share for x in lays])
     limit = np.array([x.limit for x in lays])
     collateral = share * np.array([x.max_annual_loss for x in lays])
     described = [x.describe() for x in lays]
     attachment = [x.attachment for x in lays]
+    notes = [_warning(prem[t], err[t], disc[t], mean_note) for t in range(d)]
+    flagged = sum(1 for block in notes for w in block if w)
+    if flagged:
+        first = next(w for block in notes for w in block if w)
+        warnings.warn(GridWarning(f"{flagged} priced row(s) outside the grid tolerances, e.g. {first}"), stacklevel=2)
     if names is None:
-        return _frame({}, described, attachment, limit, share, collateral, el, prem[0], sd, pa, pe, err[0])
+        return _frame({}, described, attachment, limit, share, collateral, el, prem[0], sd, pa, pe, err[0], disc[0], notes[0])
     # one table for all distortions, block after block (building it once costs far less than concatenating)
     lead = {"distortion": [name for name in names for _ in range(k)]}
     return _frame(lead, described * d, attachment * d, np.tile(limit, d), np.tile(share, d), np.tile(collateral, d),
-                  np.tile(el, d), prem.ravel(), np.tile(sd, d), np.tile(pa, d), np.tile(pe, d), err.ravel())
+                  np.tile(el, d), prem.ravel(), np.tile(sd, d), np.tile(pa, d), np.tile(pe, d), err.ravel(), disc.ravel(),
+                  [w for block in notes for w in block])
 
 
-def _frame(lead, described, attachment, limit, share, collateral, el, prem, sd, pa, pe, err) -> pd.DataFrame:
+def _check_finite_mean(model: LossModel, lays: list[Layer]):
+    """An unlimited layer on a model with an infinite mean has an infinite expected loss: refused."""
+    if not model.infinite_mean:
+        return
+    for i, lay in enumerate(lays):
+        if not math.isfinite(lay.occ_limit) and not math.isfinite(lay.agg_limit):
+            where = f"layer {i + 1} ({lay.describe()})" if len(lays) > 1 else f"the layer {lay.describe()}"
+            sev = getattr(model, "severity", None)
+            why = f"{sev!r} has an infinite mean" if sev is not None else "the model has an infinite mean"
+            raise InputError(
+                "limit",
+                f"{where} is unlimited but {why}, so its expected loss is infinite; give a finite limit "
+                "(per occurrence or in the aggregate)",
+            )
+
+
+def _beyond(model, u, oa, ol, a, lim, g) -> np.ndarray:
+    """grid_error of each layer before share: beyond_bound, with unlimited layers' estimate from the model."""
+    out = np.asarray(u.beyond_bound(a, lim, g), dtype=float)
+    if u.beyond > 0:
+        out = out.copy()
+        for j in np.flatnonzero(~np.isfinite(lim)):
+            out[j] = model.beyond_tail(u, oa, ol, float(a[j]), g)
+    return out
+
+
+def _mean_note(diag) -> str:
+    """A warning when the grid's severity mean strays from the exact one (up to the grid top)."""
+    if "severity_mean_grid" not in diag:
+        return ""
+    grid, exact = diag.get("severity_mean_grid"), diag.get("severity_mean_to_top")
+    if exact is None or not (math.isfinite(exact) and exact > 0):
+        return ""
+    rel = abs(grid / exact - 1.0)
+    if rel <= MEAN_TOLERANCE:
+        return ""
+    return (f"the grid's severity mean {grid:.6g} differs from the exact {exact:.6g} by {rel:.2g} "
+            f"(tolerance {MEAN_TOLERANCE:g}): give the model a smaller bucket")
+
+
+def _warning(prem, err, disc, mean_note) -> list[str]:
+    out = []
+    for p, e, q, m in zip(prem, err, disc, mean_note):
+        reasons = []
+        scale = abs(p) if math.isfinite(p) else 0.0
+        if e > BEYOND_TOLERANCE * scale:
+            if math.isinf(e):
+                reasons.append("the layer reaches past the grid top and its price there may be infinite; "
+                               "the premium shown is only the part below the top")
+            else:
+                reasons.append(f"probability beyond the grid top may change the premium by up to {e:.3g} "
+                               f"({_rel(e, p)} of it; tolerance {BEYOND_TOLERANCE:g}): give the model a longer grid")
+        if q > DISCRETISATION_TOLERANCE * scale:
+            reasons.append(f"discretisation error estimate {q:.3g} ({_rel(q, p)} of the premium; tolerance "
+                           f"{DISCRETISATION_TOLERANCE:g}): give the model a smaller bucket or a longer grid")
+        if m:
+            reasons.append(m)
+        out.append("; ".join(reasons))
+    return out
+
+
+def _rel(x, p) -> str:
+    return f"{x / p:.2g}" if p > 0 and math.isfinite(p) else "all"
+
+
+def _frame(lead, described, attachment, limit, share, collateral, el, prem, sd, pa, pe, err, disc, notes) -> pd.DataFrame:
     """The priced table (columns as in ``COLUMNS``, after the ``lead`` columns)."""
     with np.errstate(divide="ignore", invalid="ignore"):
         margin = prem - el
@@ -164,6 +268,8 @@ def _frame(lead, described, attachment, limit, share, collateral, el, prem, sd, 
             "prob_attach": pa,
             "prob_exhaust": pe,
             "grid_error": err,
+            "discretisation_error": disc,
+            "warning": notes,
         })
     return df
 

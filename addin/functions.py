@@ -289,12 +289,26 @@ def _layer(model, t: dict) -> Layer:
     return Layer.aggregate(t["attachment"], t["limit"], share=t["share"])
 
 
+class GridToleranceError(CellInputError):
+    """A grid result outside its tolerance (see price_layers' warning column): #NUM!, under the model."""
+
+    code = "#NUM!"
+
+
+def _within_tolerance(row):
+    """The priced row, or a #NUM! error when the engine flagged it: a cell shows no number it cannot vouch for."""
+    note = row.get("warning", "")
+    if note:
+        raise GridToleranceError("model", f"not within the grid tolerance: {note}")
+    return row
+
+
 def _priced(model, attachment, limit, distortion, share, basis, reinstatements, agg_deductible):
-    """The engine's priced row (a Series with COLUMNS) for one inline layer."""
+    """The engine's priced row (a Series with COLUMNS) for one inline layer; #NUM! past the grid tolerances."""
     g = _IDENTITY if distortion is _IDENTITY else handles.distortion_from(distortion)
     t = _terms(attachment, limit, share, basis, reinstatements, agg_deductible)
     with handles.model_in_use(model) as (_, m):
-        return price_layers(m, [_layer(m, t)], g).iloc[0]
+        return _within_tolerance(price_layers(m, [_layer(m, t)], g).iloc[0])
 
 
 # =========================================================================== builders
@@ -632,7 +646,8 @@ def LW_LAYER_STAT(model, attachment, limit, statistic, level=None, share=None, b
     with handles.model_in_use(model) as (_, m):
         lay = _layer(m, t)
         if p is None:
-            return price_layers(m, [lay], _IDENTITY).iloc[0][stat]
+            return _within_tolerance(price_layers(m, [lay], _IDENTITY).iloc[0])[stat]
+        _within_tolerance(price_layers(m, [lay], TVaRDistortion(p)).iloc[0])  # the grid checks at this level
         row = layer_statistics(m, [lay], [p]).iloc[0]
         return row[f"{stat}_{p:g}"]
 
@@ -688,8 +703,15 @@ def LW_TOWER(model, attachments, limits, distortion, shares=None, basis=None, re
             except InputError as exc:
                 arg = {"agg_deductible": "agg_deductibles"}.get(exc.argument, exc.argument)
                 raise CellInputError(arg, f"layer {i + 1}: {exc.message}") from None
-        frame = price_layers(m, layers, gs if len(gs) > 1 else next(iter(gs.values())))
+        try:
+            frame = price_layers(m, layers, gs if len(gs) > 1 else next(iter(gs.values())))
+        except InputError as exc:
+            if exc.argument != "limit":
+                raise
+            raise CellInputError("limits", exc.message) from None
     cols = _columns(columns, list(frame.columns))
+    if "warning" not in cols and frame["warning"].astype(bool).any():
+        cols.append("warning")  # a row outside the grid tolerances always shows why
     return cells.table_to_cells(frame, cols)
 
 

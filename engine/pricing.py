@@ -282,6 +282,7 @@ def price_layer(model: LossModel, layer: Layer, distortion: Distortion) -> pd.Se
 def layer_statistics(model: LossModel, layers, levels=(0.99, 0.996)) -> pd.DataFrame:
     """Expected loss, std, cv, VaR and TVaR at each level, per layer (after share)."""
     lays = _as_layers(layers)
+    _check_finite_mean(model, lays)
     lv = np.atleast_1d(np.asarray(levels, dtype=float))
     if lv.size == 0 or np.any(~np.isfinite(lv)) or np.any((lv < 0) | (lv >= 1)):
         raise InputError("levels", "probability levels must lie in [0, 1)")

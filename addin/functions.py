@@ -820,3 +820,17 @@ def describe_functions() -> list[dict]:
             ],
         })
     return out
+
+
+def register(more: dict) -> None:
+    """Add the LW_ functions of another bridge module to :data:`FUNCTIONS` (kept in name order)."""
+    clash = set(more) & {n for n, f in FUNCTIONS.items() if more.get(n) is not f}
+    if clash:
+        raise ValueError(f"published function names defined twice: {sorted(clash)}")
+    merged = dict(sorted({**FUNCTIONS, **more}.items()))
+    FUNCTIONS.clear()
+    FUNCTIONS.update(merged)
+
+
+# Portfolio functions (capital, calibration, allocation, reinstatements, loads) register themselves here.
+from . import capital_functions  # noqa: E402,F401

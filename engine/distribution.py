@@ -29,6 +29,7 @@ __all__ = ["LossDistribution"]
 _IDENTITY = None  # a distortion argument of None means g(s) = s (the expected value)
 QUANTILE_TOL = 1e-12  # probability slack when inverting the cdf, so equal-weight samples hit exact order statistics
 _BLOCK = 1 << 16  # atoms per block in the top-down integral pass: bounds its temporaries and keeps them in cache
+_MIN_BLOCK = 1 << 13  # smallest block of a distribution too large for one block (about 1/16 of it is used)
 
 
 @dataclass(frozen=True, eq=False)
@@ -145,8 +146,8 @@ class LossDistribution:
     def _tail_integrals(self, x: np.ndarray, specs) -> list:
         """One pass over the atoms for several integrands: ``[tail_integral(x, g, p) for g, p in specs]``.
 
-        The segments are visited from the top down in blocks of ``_BLOCK``
-        atoms, carrying the running sum from block to block, so the sums are
+        The segments are visited from the top down in blocks of up to
+        ``_BLOCK`` atoms (one block when they fit), carrying the running sum from block to block, so the sums are
         the same sequential top-down sums as one cumulative sum over the whole
         array (bit for bit) while no temporary is larger than a block. Only
         the running sums at the query points are kept, never a full array, so
@@ -224,9 +225,10 @@ class LossDistribution:
         above_q = [np.zeros(q_above.size) for _ in range(k)]  # above[n - 1] = 0: no segment there
         lev_q = [np.zeros(q_lev.size) for _ in range(k)]  # g(S) at j = n - 1 multiplies a zero-width part
         carry = [0.0] * k
+        block = min(_BLOCK, max(_MIN_BLOCK, n // 16))  # temporaries of about half the distribution's size at most
         hi = n - 1  # segments are 0 .. n - 2; segment s is [v[s], v[s + 1])
         while hi > 0:
-            lo = max(hi - _BLOCK, 0)
+            lo = max(hi - block, 0)
             levels = {}
             width = None
             squares = None

@@ -251,6 +251,13 @@ class TableDistortion(Distortion):
         object.__setattr__(self, "_ys", ys)
         object.__setattr__(self, "_concave", concave)
 
+    def __repr__(self):
+        def short(v):  # long tables print their first and last points only
+            return repr(v) if len(v) <= 8 else f"({', '.join(f'{x:.6g}' for x in v[:3])}, ..., {', '.join(f'{x:.6g}' for x in v[-2:])})"
+
+        more = f", {len(self.s)} points" if len(self.s) > 8 else ""
+        return f"TableDistortion(s={short(self.s)}, g={short(self.g)}, require_concave={self.require_concave}{more})"
+
     def _g(self, s):
         return np.interp(s, self._xs, self._ys)
 

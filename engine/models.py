@@ -491,6 +491,30 @@ def _integrate_sf(sev: Severity, a: float, b: float, weight_from: float | None =
     return float(val)
 
 
+def _frame_column(frame, name, argument: str, what: str) -> np.ndarray:
+    """Column ``name`` of a DataFrame (a Series when ``name`` is None) as floats; InputError naming ``argument``."""
+    cols = list(getattr(frame, "columns", []))
+    if name is None:
+        if getattr(frame, "ndim", None) == 1:  # a Series
+            col, name = frame, getattr(frame, "name", None)
+        elif len(cols) == 1:
+            name = cols[0]
+            col = frame[name]
+        else:
+            raise InputError(argument, f"name the column of {what}; the frame has columns {cols!r}")
+    else:
+        try:
+            col = frame[name]
+        except (KeyError, IndexError, TypeError):
+            raise InputError(argument, f"no column {name!r}; the frame has columns {cols!r}") from None
+        if getattr(col, "ndim", 1) != 1:
+            raise InputError(argument, f"column {name!r} appears more than once in the frame")
+    try:
+        return as_array(col.to_numpy() if hasattr(col, "to_numpy") else col, argument, allow_empty=True)
+    except InputError as exc:
+        raise InputError(argument, f"column {name!r}: {exc.message}") from None
+
+
 # --------------------------------------------------------------------------- samples and tables
 @dataclass(frozen=True, eq=False)
 class YearLossTable(LossModel):
@@ -531,6 +555,17 @@ class YearLossTable(LossModel):
     def describe(self) -> str:
         return f"year loss table of {self.losses.size:,} years"
 
+    def __repr__(self):
+        return f"<YearLossTable: {self.describe()}{', weighted' if self.weights is not None else ''}>"
+
+    @classmethod
+    def from_frame(cls, frame, column=None, weights=None) -> "YearLossTable":
+        """From a DataFrame: annual losses in ``column`` (optional for a one-column frame or a Series),
+        optional year weights in the column ``weights``."""
+        x = _frame_column(frame, column, "column", "annual losses")
+        w = None if weights is None else _frame_column(frame, weights, "weights", "weights")
+        return cls(x, w)
+
     def _annual(self, a, l):
         return LossDistribution.from_sample(self.losses, self.weights)
 
@@ -567,6 +602,15 @@ class ScenarioTable(LossModel):
 
     def describe(self) -> str:
         return f"scenario table of {self.outcomes.size} outcomes"
+
+    def __repr__(self):
+        return f"<ScenarioTable: {self.describe()}>"
+
+    @classmethod
+    def from_frame(cls, frame, outcome: str, probability: str) -> "ScenarioTable":
+        """From a DataFrame with one row per scenario: annual loss in ``outcome``, probability in ``probability``."""
+        return cls(_frame_column(frame, outcome, "outcome", "outcomes"),
+                   _frame_column(frame, probability, "probability", "probabilities"))
 
     def _annual(self, a, l):
         return LossDistribution.from_atoms(self.outcomes, self.probabilities)
@@ -618,6 +662,15 @@ class YearEventTable(LossModel):
 
     def describe(self) -> str:
         return f"year-event table of {self.losses.size:,} events in {self.n_years:,} years"
+
+    def __repr__(self):
+        return f"<YearEventTable: {self.describe()}>"
+
+    @classmethod
+    def from_frame(cls, frame, year: str, loss: str, n_years: int | None = None) -> "YearEventTable":
+        """From a DataFrame with one row per event: simulated year (1, 2, ...) in ``year``, loss in ``loss``;
+        ``n_years`` counts years without events too (default: the largest year number)."""
+        return cls(_frame_column(frame, year, "year", "event years"), _frame_column(frame, loss, "loss", "event losses"), n_years)
 
     def _annual(self, a, l):
         # at most one event-length temporary: the payments, clipped in place

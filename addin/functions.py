@@ -30,7 +30,18 @@ import logging
 import math
 
 import numpy as np
-import xlwings as xw
+
+try:
+    import xlwings as xw
+except ImportError:
+    # A Python without xlwings (e.g. one running inside a browser, see addin/export.py): no-op stand-ins like
+    # xlwings' own off Windows, so the shims below record the metadata themselves.
+    import types
+
+    def _no_op(*args, **kwargs):
+        return lambda f: f
+
+    xw = types.SimpleNamespace(func=_no_op, arg=_no_op, ret=_no_op)
 
 from layerwise.engine.distortions import Blend, TableDistortion, TVaRDistortion, make_distortion
 from layerwise.engine.errors import InputError

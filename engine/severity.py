@@ -13,6 +13,7 @@ scale, and so on. Any other continuous scipy distribution is available through
 """
 from __future__ import annotations
 
+import functools
 import math
 from dataclasses import dataclass, field
 
@@ -76,13 +77,16 @@ class Severity:
     def isf(self, q):
         return self.dist.isf(q)
 
-    @property
+    @functools.cached_property
     def mean(self) -> float:
-        return float(self.dist.mean())
+        """E[X]; inf when infinite. scipy's value when it is a number >= 0, else from the survival function
+        (scipy gives NaN or even negative numbers for some valid parameters, e.g. invweibull with c <= 1)."""
+        return _moment(self, 1)
 
-    @property
+    @functools.cached_property
     def variance(self) -> float:
-        return float(self.dist.var())
+        """Var X; inf when infinite (checked as for :attr:`mean`)."""
+        return _moment(self, 2)
 
     @property
     def cv(self) -> float:
@@ -99,12 +103,12 @@ class Severity:
         the survival function decides (see :func:`integral`). Pareto (Lomax)
         shape <= 1 and generalized Pareto shape >= 1 have infinite means.
         """
-        return _moment_finite(self, 1)
+        return math.isfinite(self.mean)
 
     @property
     def finite_variance(self) -> bool:
         """True when Var X is finite (Pareto shape > 2, generalized Pareto shape < 1/2, ...)."""
-        return _moment_finite(self, 2)
+        return math.isfinite(self.variance)
 
     def limited_mean(self, d) -> np.ndarray:
         """E[min(X, d)] = integral of sf from 0 to d, by adaptive quadrature (reference use)."""
@@ -167,17 +171,21 @@ def integral(sf, lo: float, hi: float = math.inf, distortion=None, *, scale: flo
     return total
 
 
-def _moment_finite(sev: "Severity", order: int) -> bool:
-    value = sev.mean if order == 1 else sev.variance
-    if math.isfinite(value):
-        return True
-    if value == math.inf:
-        return False
-    # NaN from scipy: E[X^k] = k * integral x^(k-1) S(x) dx; decide from the tail beyond the median
+def _moment(sev: "Severity", order: int) -> float:
+    """Mean (order 1) or variance (order 2) of ``sev``: scipy's when plausible, else by :func:`integral`."""
+    with np.errstate(all="ignore"):
+        value = float(sev.dist.mean() if order == 1 else sev.dist.var())
+    if value == math.inf or (math.isfinite(value) and value >= 0):
+        return value
+    # NaN or negative from scipy: E[X^k] = k * integral x^(k-1) S(x) dx (X >= 0)
+    upper = sev.upper
     med = float(sev.ppf(0.5))
     med = med if math.isfinite(med) and med > 0 else 1.0
-    fn = sev.sf if order == 1 else (lambda x: x * sev.sf(x) / med)
-    return math.isfinite(integral(fn, med, sev.upper, first=med))
+    m1 = integral(sev.sf, 0.0, upper, first=med * 1e-6)
+    if order == 1 or not math.isfinite(m1):
+        return m1
+    half = integral(lambda x: x * sev.sf(x), 0.0, upper, first=med * 1e-6)
+    return max(2.0 * half - m1 * m1, 0.0) if math.isfinite(half) else math.inf
 
 
 def _positive(value, argument):

@@ -123,7 +123,7 @@ def _tilts(n: int, size: int):
     return _tilt_factors(n, size) if n <= 2**20 else _tilt_factors.__wrapped__(n, size)
 
 
-def aggregate(pgf, probs: np.ndarray, tail: float, padding: int = 2):
+def aggregate(pgf, probs: np.ndarray, tail: float, padding: int = 2, max_count: float = math.inf):
     """Compound distribution on the same grid: returns ``(agg, beyond)``.
 
     ``pgf`` is the claim-count generating function (complex in, complex out),
@@ -131,6 +131,15 @@ def aggregate(pgf, probs: np.ndarray, tail: float, padding: int = 2):
     probability beyond the grid (placed at index n, so every year that
     contains such a loss lands beyond the grid). ``agg`` has shape (n,);
     ``beyond`` is the aggregate probability at or beyond n*h.
+
+    ``max_count`` is the largest possible number of claims (fixed counts,
+    binomial). With a bounded severity grid (no ``tail``) the aggregate then
+    ends at ``max_count`` times the severity's last atom; when that is on the
+    grid, the grid above it is set to zero and ``beyond`` is 0. (The untilt
+    multiplies the transform's round-off, about 1e-18 of tilted probability,
+    by up to exp(TILT / padding): enough to leave spurious atoms of a few
+    1e-15 above the largest possible loss, which a distortion with a jump at
+    0, cost of capital, would charge capital for.)
     """
     n = probs.size
     size = n * max(int(padding), 2)
@@ -142,6 +151,12 @@ def aggregate(pgf, probs: np.ndarray, tail: float, padding: int = 2):
     a = np.fft.irfft(pgf(np.fft.rfft(f)), size)[:n]
     a *= up
     a[a < ROUNDOFF] = 0.0
+    nz = np.flatnonzero(probs) if math.isfinite(max_count) and not tail > 0 else np.empty(0, dtype=np.int64)
+    if nz.size and max_count * nz[-1] < n:
+        # the whole compound lies on the grid: nothing above the largest possible total, nothing beyond
+        a[int(max_count * nz[-1]) + 1 :] = 0.0
+        a /= a.sum()
+        return a, 0.0
     total = float(a.sum())
     if total > 1.0:
         a /= total

@@ -33,6 +33,11 @@ class Frequency:
     def pmf(self, k):
         return self._scipy().pmf(k)
 
+    @property
+    def max_count(self) -> float:
+        """Largest possible number of claims (inf when unbounded)."""
+        return math.inf
+
 
 @dataclass(frozen=True)
 class Poisson(Frequency):
@@ -106,6 +111,10 @@ class Binomial(Frequency):
     def pgf(self, z):
         return (1.0 + self.q * (z - 1.0)) ** self.n
 
+    @property
+    def max_count(self) -> float:
+        return float(self.n)
+
     def _scipy(self):
         return stats.binom(self.n, self.q)
 
@@ -132,6 +141,10 @@ class FixedCount(Frequency):
 
     def pgf(self, z):
         return z**self.n
+
+    @property
+    def max_count(self) -> float:
+        return float(self.n)
 
     def ppf(self, q):
         return float(self.n)

@@ -245,12 +245,14 @@ class FrequencySeverity(LossModel):
     def _annual(self, a, l):
         h, n, probs, tail = self._severity_grid(a, l)
         sev = self.severity
-        agg, beyond = aggregate(self.frequency.pgf, probs, tail, self.padding)
+        agg, beyond = aggregate(self.frequency.pgf, probs, tail, self.padding, self.frequency.max_count)
         grid = np.arange(n, dtype=float) * h
         diag = {"bucket": h, "grid_length": n, "method": self.method, "grid_top": n * h, "beyond": beyond}
         k = grid
-        d_m1 = float(probs @ k + tail * n * h)
-        d_m2 = float(probs @ (k * k))
+        # einsum, not @: a BLAS dot of this size wakes OpenBLAS's threads, which on a busy
+        # 2-core machine costs 10-20 ms per call instead of 20 microseconds
+        d_m1 = float(np.einsum("i,i->", probs, k) + tail * n * h)
+        d_m2 = float(np.einsum("i,i->", probs, k * k))
         diag["severity_mean_grid"] = d_m1
         diag["severity_cv_grid"] = math.sqrt(max(d_m2 - d_m1 * d_m1, 0)) / d_m1 if d_m1 > 0 else math.nan
         dist = _grid_distribution(grid, agg, beyond, n * h)
@@ -293,7 +295,7 @@ class FrequencySeverity(LossModel):
         ext[odd] = 0.0
         ext[odd - 1] += half
         ext[odd + 1] += half
-        agg, beyond = aggregate(self.frequency.pgf, ext[:n], float(ext[n]), self.padding)
+        agg, beyond = aggregate(self.frequency.pgf, ext[:n], float(ext[n]), self.padding, self.frequency.max_count)
         return _grid_distribution(np.arange(n, dtype=float) * h, agg, beyond, n * h)
 
     def beyond_tail(self, dist: LossDistribution, occ_attachment: float, occ_limit: float, start: float, distortion=None) -> float:

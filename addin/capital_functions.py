@@ -20,6 +20,11 @@ families: proportional_hazard (ph), wang, dual_power, tvar, cost_of_capital
 (ccoc). ``families`` takes one or several names (a range, or a
 comma-separated text); empty = all five.
 
+Grid tolerances. As for the layer functions, a single-cell result that rests
+on a grid the engine flags (see price_layers' ``warning`` column) is a
+``#NUM!`` error value under ``model``; two-column tables then end with a
+``warning`` row, and LW_CALIBRATION puts the warning in its ``note`` column.
+
 Towers. Functions pricing several layers take ``attachments`` and ``limits``
 and the optional ``shares``, ``basis``, ``reinstatements`` and
 ``agg_deductibles`` exactly as LW_TOWER does.
@@ -35,17 +40,22 @@ from layerwise.engine.allocation import allocate_to_layers, allocate_to_units
 from layerwise.engine.calibration import (
     DEFAULT_FAMILIES, _family, calibrate, calibrate_to_return, implied_parameter, implied_spread, price_at_target,
 )
-from layerwise.engine.capital import CapitalStandard, price_portfolio
+from layerwise.engine.capital import CapitalStandard, capital_layers, price_portfolio
 from layerwise.engine.distortions import make_distortion
 from layerwise.engine.errors import InputError
 from layerwise.engine.loads import gross_premium
+from layerwise.engine.layers import Layer
 from layerwise.engine.models import FrequencySeverity, YearEventTable, YearLossTable
+from layerwise.engine.pricing import price_layers
 from layerwise.engine.reinstatements import price_with_reinstatements
 from layerwise.engine.sensitivity import price_sensitivities
 
 from . import cells, functions, handles
 from .cells import CellInputError
-from .functions import CATEGORY, HELP, _args, _columns, _layer, _per_layer, _terms, _texts, cell_function, xl_arg, xl_func, xl_ret
+from .functions import (
+    CATEGORY, HELP, _args, _columns, _layer, _per_layer, _terms, _texts, _within_tolerance, cell_function, xl_arg, xl_func,
+    xl_ret,
+)
 
 __all__ = ["FUNCTIONS", "TABLES"]
 
@@ -101,16 +111,13 @@ _REINSTATEMENT_ROWS = {  # table label -> ReinstatementPrice field
     "monotone": "monotone",
     "method": "method",
 }
-_REINSTATEMENT_QUANTITIES = {
-    "upfront": "upfront_premium", "upfront_premium": "upfront_premium", "premium": "upfront_premium",
+_REINSTATEMENT_QUANTITIES = {  # alias -> table label
+    **{k: k for k in _REINSTATEMENT_ROWS if k not in ("reinstatements", "monotone", "method")},
+    "upfront": "upfront_premium", "premium": "upfront_premium",
     "expected_reinstatement": "expected_reinstatement_premium", "reinstatement": "expected_reinstatement_premium",
-    "expected_reinstatement_premium": "expected_reinstatement_premium",
     "total": "total_expected_premium", "total_premium": "total_expected_premium",
-    "total_expected_premium": "total_expected_premium",
-    "expected_loss": "expected_loss", "el": "expected_loss",
-    "loss_ratio": "loss_ratio", "upfront_loss_ratio": "upfront_loss_ratio",
-    "rate_on_line": "rate_on_line", "rol": "rate_on_line",
-    "premium_free_reinstatements": "premium_no_reinstatement_cost", "free": "premium_no_reinstatement_cost",
+    "el": "expected_loss", "rol": "rate_on_line",
+    "free": "premium_free_reinstatements", "premium_no_reinstatement_cost": "premium_free_reinstatements",
 }
 
 
@@ -211,8 +218,26 @@ def _tower_layers(model, terms: list[dict]):
     return layers
 
 
+def _grid_note(model, layer: Layer, g) -> str:
+    """The engine's grid warning for ``layer`` priced at ``g`` ("" when within the tolerances)."""
+    return str(price_layers(model, [layer], g).iloc[0].get("warning", "") or "")
+
+
+def _vouch(model, layer: Layer, g):
+    """A #NUM! error under model when the grid behind a single-cell result is outside its tolerances."""
+    _within_tolerance(price_layers(model, [layer], g).iloc[0])
+
+
+def _warnings(model, layers, g) -> list[str]:
+    """The engine's grid warning of each layer at ``g`` (a dict of distortions: one block of layers per distortion)."""
+    return [str(w or "") for w in price_layers(model, layers, g)["warning"]]
+
+
 def _table(frame, columns):
-    return cells.table_to_cells(frame, _columns(columns, list(frame.columns)))
+    cols = _columns(columns, list(frame.columns))
+    if "warning" in frame.columns and "warning" not in cols and frame["warning"].astype(bool).any():
+        cols.append("warning")  # a row outside the grid tolerances always shows why (as in LW_TOWER)
+    return cells.table_to_cells(frame, cols)
 
 
 def _pairs(rows) -> list[list]:
@@ -235,10 +260,13 @@ def LW_PORTFOLIO(model, distortion, standard, level, quantity=None):
     what = cells.choice(quantity, "quantity", _PORTFOLIO_QUANTITIES, default=None)
     with handles.model_in_use(model) as (_, m):
         res = price_portfolio(m, g, std)
-    if what is not None:
-        return getattr(res, what)
+        whole = Layer.aggregate(0.0, res.assets)  # the portfolio's payments X ∧ a
+        if what is not None:
+            _vouch(m, whole, g)
+            return getattr(res, what)
+        note = _grid_note(m, whole, g)
     row = res.as_series()
-    return _pairs((k, row[k]) for k in _PORTFOLIO_ROWS)
+    return _pairs([(k, row[k]) for k in _PORTFOLIO_ROWS] + ([("warning", note)] if note else []))
 
 
 # =========================================================================== calibration
@@ -252,7 +280,9 @@ def LW_CALIBRATE(model, target_return, standard, level, family):
     std = _standard(standard, level)
     fam = cells.text(family, "family")
     with handles.model_in_use(model) as (_, m):
-        return calibrate_to_return(m, t, std, fam).value
+        res = calibrate_to_return(m, t, std, fam)
+        _vouch(m, Layer.aggregate(0.0, res.assets), res.distortion)
+        return res.value
 
 
 @xl_func(category=CATEGORY, volatile=False)
@@ -267,10 +297,17 @@ def LW_CALIBRATION(model, target_return, standard, level, families=None, columns
     with handles.model_in_use(model) as (_, m):
         std.assets(m.annual())  # an unusable standard is an error of level, not a note on every family
         frame = calibrate(m, t, std, fams, errors="skip")
-    refs = []
-    for fam, value in zip(frame["family"], frame["value"]):
-        refs.append(handles.distortion_reference(make_distortion(fam, value)) if np.isfinite(value) else "")
+        refs, notes = [], []
+        for fam, value, assets, note in zip(frame["family"], frame["value"], frame["assets"], frame["note"]):
+            if np.isfinite(value):
+                g = make_distortion(fam, value)
+                refs.append(handles.distortion_reference(g))
+                note = note or _grid_note(m, Layer.aggregate(0.0, assets), g)
+            else:
+                refs.append("")
+            notes.append(note)
     frame.insert(3, "distortion", refs)
+    frame["note"] = notes
     return _table(frame, columns)
 
 
@@ -287,7 +324,8 @@ def LW_TARGET_TOWER(model, attachments, limits, target_return, standard, level, 
     std = _standard(standard, level)
     fams = _family_names(families)
     with handles.model_in_use(model) as (_, m):
-        frame = price_at_target(m, _tower_layers(m, terms), t, std, fams)
+        with _engine(limit="limits"):
+            frame = price_at_target(m, _tower_layers(m, terms), t, std, fams)
     return _table(frame, columns)
 
 
@@ -306,7 +344,9 @@ def LW_IMPLIED_PARAMETER(model, attachment, limit, price, family, quote=None, sh
     with handles.model_in_use(model) as (_, m):
         layer = _layer(m, t)
         with _engine(premium="price", rate_on_line="price"):
-            return implied_parameter(m, layer, fam, **{how: observed}).value
+            res = implied_parameter(m, layer, fam, **{how: observed})
+        _vouch(m, layer, res.distortion)
+        return res.value
 
 
 @xl_func(category=CATEGORY, volatile=False)
@@ -332,8 +372,13 @@ def LW_IMPLIED_SPREAD(model, attachments, limits, market_layer, price, quote=Non
     what = cells.choice(measure, "measure", _MEASURES, default="premium")
     with handles.model_in_use(model) as (_, m):
         layers = _tower_layers(m, terms)
-        with _engine(premium="price", rate_on_line="price"):
+        with _engine(premium="price", rate_on_line="price", limit="limits"):
             frame = implied_spread(m, layers, i - 1, families=fams, measure=what, **{how: observed})
+            notes = [""] * k
+            for fam, value in frame.attrs["parameters"].items():
+                notes = [a or b for a, b in zip(notes, _warnings(m, layers, make_distortion(fam, value)))]
+    if any(notes):
+        frame["warning"] = notes
     return cells.table_to_cells(frame)
 
 
@@ -352,6 +397,10 @@ def LW_ALLOCATE_LAYERS(model, distortion, standard, level, breaks=None, columns=
     b = cells.vector(breaks, "breaks", low=0.0, default=())
     with handles.model_in_use(model) as (_, m):
         frame = allocate_to_layers(m, g, std, b)
+        a = float(frame["limit"].iloc[-1])  # the total row: 0 to the assets
+        notes = _warnings(m, capital_layers(a, b) + [Layer.aggregate(0.0, a)], g)
+    if any(notes):
+        frame["warning"] = notes
     return _table(frame, columns)
 
 
@@ -479,7 +528,12 @@ def LW_SENSITIVITY(model, attachments, limits, distortion, shares=None, basis=No
     terms = _tower_terms(attachments, limits, shares, basis, reinstatements, agg_deductibles)
     g = _distortions(distortion)
     with handles.model_in_use(model) as (_, m):
-        frame = price_sensitivities(m, _tower_layers(m, terms), g)
+        layers = _tower_layers(m, terms)
+        with _engine(limit="limits"):
+            frame = price_sensitivities(m, layers, g)
+            notes = _warnings(m, layers, g)
+    if any(notes):
+        frame["warning"] = notes
     return _table(frame, columns)
 
 
@@ -501,7 +555,9 @@ def _reinstatement_price(model, attachment, limit, distortion, rates, share):
         if not m.occurrence_terms:
             raise CellInputError("model", f"a {handles.model_kind(m)} holds annual totals only; paid reinstatements apply "
                                           "per occurrence: use a year-event table or a frequency-severity model")
-        return price_with_reinstatements(m, a, lim, c, g, share=s)
+        res = price_with_reinstatements(m, a, lim, c, g, share=s)
+        note = _grid_note(m, Layer.occurrence(a, lim, reinstatements=c.size, share=s), g)
+    return res, note
 
 
 @xl_func(category=CATEGORY, volatile=False)
@@ -515,7 +571,10 @@ def _reinstatement_price(model, attachment, limit, distortion, rates, share):
 def LW_REINSTATEMENT_PREMIUM(model, attachment, limit, distortion, rates=None, share=None, quantity=None):
     """Upfront premium of a per-occurrence layer whose reinstatements are paid, priced so the distortion finds it fair."""
     what = cells.choice(quantity, "quantity", _REINSTATEMENT_QUANTITIES, default="upfront_premium")
-    return getattr(_reinstatement_price(model, attachment, limit, distortion, rates, share), what)
+    res, note = _reinstatement_price(model, attachment, limit, distortion, rates, share)
+    if note:
+        raise functions.GridToleranceError("model", f"not within the grid tolerance: {note}")
+    return getattr(res, _REINSTATEMENT_ROWS[what])
 
 
 @xl_func(category=CATEGORY, volatile=False)
@@ -524,8 +583,9 @@ def LW_REINSTATEMENT_PREMIUM(model, attachment, limit, distortion, rates=None, s
 @cell_function
 def LW_REINSTATEMENT_TABLE(model, attachment, limit, distortion, rates=None, share=None):
     """Paid reinstatements in full: upfront, expected reinstatement and total premium, loss ratios, rate on line, method."""
-    res = _reinstatement_price(model, attachment, limit, distortion, rates, share)
-    return _pairs((label, getattr(res, field)) for label, field in _REINSTATEMENT_ROWS.items())
+    res, note = _reinstatement_price(model, attachment, limit, distortion, rates, share)
+    rows = [(label, getattr(res, field)) for label, field in _REINSTATEMENT_ROWS.items()]
+    return _pairs(rows + ([("warning", note)] if note else []))
 
 
 # =========================================================================== loads

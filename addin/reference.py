@@ -29,7 +29,7 @@ from .functions import FUNCTIONS, describe_functions
 
 __all__ = [
     "GROUPS", "EXAMPLES", "UNITS", "EXAMPLE_SHEET", "EXAMPLE_COLUMN", "REFERENCE_PATH", "render_reference",
-    "example_cells", "write_example_workbook", "reference_main",
+    "example_cells", "fill_example_sheet", "write_example_workbook", "reference_main",
 ]
 
 REFERENCE_PATH = Path(__file__).with_name("REFERENCE.md")
@@ -343,6 +343,14 @@ def write_example_workbook(path) -> Path:
     wb = openpyxl.Workbook()
     ws = wb.active
     ws.title = "Examples"
+    fill_example_sheet(ws)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    wb.save(path)
+    return path
+
+
+def fill_example_sheet(ws) -> None:
+    """Write :data:`EXAMPLE_SHEET` and every example formula (column AB, names in AA) into an openpyxl worksheet."""
     for cell, content, what in EXAMPLE_SHEET:
         ws[cell] = content
         if what and cell.startswith("B"):
@@ -351,9 +359,6 @@ def write_example_workbook(path) -> Path:
     for (cell, formula), name in zip(example_cells().items(), names):
         ws[cell] = formula
         ws[cell.replace(EXAMPLE_COLUMN, "AA", 1)] = name
-    path.parent.mkdir(parents=True, exist_ok=True)
-    wb.save(path)
-    return path
 
 
 # =========================================================================== command line

@@ -69,16 +69,28 @@ CHILD = textwrap.dedent(
 )
 
 
-def _dependency_paths() -> list[str]:
-    """sys.path entries for numpy, scipy and pandas (and the standard library), without the .pth hooks of site."""
-    dirs = {str(Path(mod.__file__).resolve().parents[1]) for mod in (numpy, scipy, pandas)}
+def _dependency_paths(tmp_path: Path) -> list[str]:
+    """sys.path entries with numpy, scipy and pandas (and the standard library) but not layerwise.
+
+    The site-packages folders holding numpy, scipy and pandas may also hold layerwise (a regular
+    install) or its editable-install hooks, so their entries are linked into a folder of their own,
+    leaving out layerwise's; the child runs without site, so no .pth hooks run either.
+    """
+    deps = tmp_path / "deps"
+    deps.mkdir()
+    for site in {Path(mod.__file__).resolve().parents[1] for mod in (numpy, scipy, pandas)}:
+        for entry in site.iterdir():
+            name = entry.name.lower()
+            if name.startswith(("layerwise", "__editable__")) or name.endswith(".pth") or (deps / entry.name).exists():
+                continue
+            (deps / entry.name).symlink_to(entry, target_is_directory=entry.is_dir())
     stdlib = [p for p in sys.path if p and Path(p).is_dir() and "site-packages" not in p and "dist-packages" not in p
               and Path(p).resolve() != Path.cwd().resolve()]
-    return stdlib + sorted(dirs)
+    return stdlib + [str(deps)]
 
 
 def _run_child(path: Path, tmp_path: Path) -> dict:
-    code = f"PATHS = {_dependency_paths()!r}\nFILE = {str(path)!r}\nCALLS = {CALLS!r}\nYLT_CALLS = {YLT_CALLS!r}\n" + CHILD
+    code = f"PATHS = {_dependency_paths(tmp_path)!r}\nFILE = {str(path)!r}\nCALLS = {CALLS!r}\nYLT_CALLS = {YLT_CALLS!r}\n" + CHILD
     env = {"PATH": os.environ.get("PATH", "/usr/bin:/bin"), "PYTHONHASHSEED": "0"}
     # -I: no environment variables, no user site, no script folder; -S: no site, so no .pth hooks (the
     # editable install of layerwise is one), whatever the sys.path built above holds

@@ -38,7 +38,7 @@ import numpy as np
 
 from layerwise.engine.allocation import allocate_to_layers, allocate_to_units
 from layerwise.engine.calibration import (
-    DEFAULT_FAMILIES, _family, calibrate, calibrate_to_return, implied_parameter, implied_spread, price_at_target,
+    _family, calibrate, calibrate_to_return, implied_parameter, implied_spread, price_at_target,
 )
 from layerwise.engine.capital import CapitalStandard, capital_layers, price_portfolio
 from layerwise.engine.distortions import make_distortion

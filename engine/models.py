@@ -207,6 +207,7 @@ class FrequencySeverity(LossModel):
             else:
                 m = max(int(n / (n_top + 1)), 1)
                 h = occ_limit / m
+            _check_grid_fits(h, n, occ_attachment, occ_limit)
             return float(h), int(n)
         # ground-up (or unlimited excess) severity. Only finite moments are used: with an infinite
         # variance (Pareto shape <= 2) or mean (shape <= 1) the top comes from a far quantile and the
@@ -228,6 +229,8 @@ class FrequencySeverity(LossModel):
         if self.bucket is not None:
             h = self.bucket
             n = self.grid_length or _pow2_points(top / h, 2**12, 2**20)
+            if not (h >= 1e-300 and math.isfinite(n * h) and math.isfinite(occ_attachment + n * h)):
+                raise InputError("bucket", f"{h:g} is too {'small' if not h >= 1e-300 else 'large'} for a grid of {n} points")
             return float(h), int(n)
         h_fine = max(ref / GROUND_UP_RESOLUTION, 1e-300)
         if self.grid_length:
@@ -327,8 +330,17 @@ class FrequencySeverity(LossModel):
                               first=start * 0.01)
 
 
+def _check_grid_fits(h: float, n: int, a: float, l: float):
+    """A per-occurrence grid needs a bucket that is a normal float and a top that is finite."""
+    if not (h >= 1e-300 and math.isfinite(n * h) and math.isfinite(a + n * h)):
+        size = "small" if not h >= 1e-300 else "large"
+        raise InputError("limit", f"{l:g} (attachment {a:g}) is too {size} for a grid of {n} points of {h:g}")
+
+
 def _grid_distribution(grid, agg, beyond, top) -> LossDistribution:
     nz = agg > 0
+    if not nz.any():  # every year lands beyond the grid (e.g. far more claims than the grid can hold)
+        return LossDistribution.from_atoms([0.0], [0.0], beyond=1.0, top=top, sorted_unique=True)
     if beyond > 0:
         return LossDistribution.from_atoms(grid[nz], agg[nz], beyond=beyond, top=top, sorted_unique=True)
     return LossDistribution.from_atoms(grid[nz], agg[nz], sorted_unique=True)

@@ -13,10 +13,23 @@ import matplotlib
 matplotlib.use("Agg")
 import matplotlib.pyplot as plt  # noqa: E402
 import numpy as np  # noqa: E402
+from matplotlib.ticker import FuncFormatter  # noqa: E402
 
 __all__ = ["exceedance_chart", "distortion_chart", "premium_split_chart"]
 
 _LAYER_COLOURS = ["#4c72b0", "#dd8452", "#55a868", "#c44e52", "#8172b3", "#937860", "#da8bc3", "#8c8c8c", "#ccb974", "#64b5cd"]
+
+
+def _short_amount(x, _pos=None) -> str:
+    """Tick label for an amount: 0, 250k, 50m, 1.5bn (no offset or scientific notation)."""
+    for scale, suffix in ((1e9, "bn"), (1e6, "m"), (1e3, "k")):
+        if abs(x) >= scale:
+            return f"{x / scale:,.4g}{suffix}"
+    return f"{x:,.4g}"
+
+
+def _amount_axis(axis) -> None:
+    axis.set_major_formatter(FuncFormatter(_short_amount))
 
 
 def _finish(fig, path) -> Path:
@@ -52,6 +65,7 @@ def exceedance_chart(model, layers, path, *, title: str | None = None) -> Path:
     ax.set_ylim(max(y_lo, 1e-6), 1.0)
     ax.set_xlim(0, x_hi)
     ax.set_xlabel("loss")
+    _amount_axis(ax.xaxis)
     ax.set_ylabel("exceedance probability (log scale)")
     ax.set_title(title or f"Exceedance curve: {model.describe()}", fontsize=10)
     ax.grid(True, which="both", alpha=0.3)
@@ -67,7 +81,8 @@ def distortion_chart(distortions: dict, path, *, title: str = "Distortion functi
     for i, (name, g) in enumerate(distortions.items()):
         gs = np.asarray(g(s), dtype=float)
         gs[0] = 0.0
-        ax.plot(s, gs, color=_LAYER_COLOURS[i % len(_LAYER_COLOURS)], lw=1.6, label=f"{name}: {g.label()}")
+        label = name if name == g.label() else f"{name}: {g.label()}"
+        ax.plot(s, gs, color=_LAYER_COLOURS[i % len(_LAYER_COLOURS)], lw=1.6, label=label)
     ax.set_xlim(0, 1)
     ax.set_ylim(0, 1.02)
     ax.set_xlabel("survival probability s")
@@ -95,6 +110,7 @@ def premium_split_chart(table, path, *, title: str = "Premium and capital by lay
     ax.bar(pos, capital, bottom=el + margin, color="#c7c7c7", label="capital")
     ax.set_xticks(pos, labels)
     ax.set_ylabel("amount")
+    _amount_axis(ax.yaxis)
     ax.set_title(title, fontsize=10)
     ax.grid(True, axis="y", alpha=0.3)
     ax.legend(fontsize=8)

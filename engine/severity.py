@@ -150,7 +150,7 @@ def integral(sf, lo: float, hi: float = math.inf, distortion=None, *, scale: flo
     if lo + step >= end:
         edges = np.array([lo, end])
     else:
-        k = math.ceil(math.log((end - lo) / step) / math.log(_RATIO))
+        k = math.ceil((math.log(end - lo) - math.log(step)) / math.log(_RATIO))  # as a difference of logs: no overflow for tiny steps
         edges = lo + np.concatenate([[0.0], step * _RATIO ** np.arange(k)])
         edges = np.append(edges[edges < end], end)
     left, width = edges[:-1], np.diff(edges)

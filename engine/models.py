@@ -259,9 +259,9 @@ class FrequencySeverity(LossModel):
         diag["severity_mean_grid"] = d_m1
         diag["severity_cv_grid"] = math.sqrt(max(d_m2 - d_m1 * d_m1, 0)) / d_m1 if d_m1 > 0 else math.nan
         dist = _grid_distribution(grid, agg, beyond, n * h)
-        gm = dist.mean()
+        gm, second, _ = dist.layer_profile(0.0, math.inf)  # mean and E[X^2] in one pass: dist.mean(), dist.std()
         diag["mean_grid"] = gm
-        diag["cv_grid"] = dist.std() / gm if gm > 0 else math.nan
+        diag["cv_grid"] = math.sqrt(max(second - gm * gm, 0.0)) / gm if gm > 0 else math.nan
         # the analytic layered severity moments (for comparison with the grid) need adaptive
         # quadrature for a per-occurrence layer, which costs more than the whole grid: computed
         # on first read of the diagnostics

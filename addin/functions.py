@@ -322,6 +322,18 @@ def _priced(model, attachment, limit, distortion, share, basis, reinstatements, 
         return _within_tolerance(price_layers(m, [_layer(m, t)], g).iloc[0])
 
 
+def _collateralised(row, column):
+    """A capital figure of a priced row; an unbounded collateral gets an error that says what to give."""
+    if not math.isfinite(row["collateral"]):
+        err = InputError(
+            "reinstatements",
+            "capital is unbounded: the layer can pay without limit in a year; give a number of reinstatements or an aggregate limit",
+        )
+        err.code = "#NUM!"  # the inputs are valid; the result is not a finite number
+        raise err
+    return row[column]
+
+
 # =========================================================================== builders
 @xl_func(category=CATEGORY, volatile=False)
 @_args(
@@ -627,7 +639,7 @@ def LW_RATE_ON_LINE(model, attachment, limit, distortion, share=None, basis=None
 @cell_function
 def LW_CAPITAL(model, attachment, limit, distortion, share=None, basis=None, reinstatements=None, agg_deductible=None):
     """Capital the layer consumes when fully collateralised: largest annual payment x share, less premium."""
-    return _priced(model, attachment, limit, distortion, share, basis, reinstatements, agg_deductible)["capital"]
+    return _collateralised(_priced(model, attachment, limit, distortion, share, basis, reinstatements, agg_deductible), "capital")
 
 
 @xl_func(category=CATEGORY, volatile=False)
@@ -636,7 +648,7 @@ def LW_CAPITAL(model, attachment, limit, distortion, share=None, basis=None, rei
 @cell_function
 def LW_RETURN_ON_CAPITAL(model, attachment, limit, distortion, share=None, basis=None, reinstatements=None, agg_deductible=None):
     """Return on the layer's capital: margin divided by capital (fully collateralised)."""
-    return _priced(model, attachment, limit, distortion, share, basis, reinstatements, agg_deductible)["return_on_capital"]
+    return _collateralised(_priced(model, attachment, limit, distortion, share, basis, reinstatements, agg_deductible), "return_on_capital")
 
 
 @xl_func(category=CATEGORY, volatile=False)

@@ -240,10 +240,24 @@ class FrequencySeverity(LossModel):
         # rather than the bucket widened past the resolution of the body
         return min(nice_bucket(max(top / n, 1e-300)), nice_bucket(h_fine)), int(n)
 
-    def _severity_grid(self, a, l):
+    def _severity_grid(self, a, l, *, release: bool = False):
+        """(bucket, points, probabilities, tail) of the layered severity on its grid.
+
+        The last one computed is remembered (read-only), so that the coarse
+        distribution price_layers asks for right after the fine one does not
+        discretise the severity again; ``release`` drops it after use.
+        """
+        memo = self.__dict__.get("_severity_memo")
+        if memo is not None and memo[0] == (a, l):
+            if release:
+                object.__setattr__(self, "_severity_memo", None)
+            return memo[1]
         h, n = self.grid(a, l)
         probs, tail = discretise(self.severity.sf, h, n, a, l, self.method)
-        return h, n, probs, tail
+        probs.flags.writeable = False
+        out = (h, n, probs, tail)
+        object.__setattr__(self, "_severity_memo", None if release else ((a, l), out))
+        return out
 
     def _annual(self, a, l):
         h, n, probs, tail = self._severity_grid(a, l)
@@ -290,7 +304,7 @@ class FrequencySeverity(LossModel):
         return self._cache.get(("coarse", a, l), lambda: self._coarse(a, l))
 
     def _coarse(self, a, l):
-        h, n, probs, tail = self._severity_grid(a, l)
+        h, n, probs, tail = self._severity_grid(a, l, release=True)
         ext = np.append(probs, tail)
         last = int(round(l / h)) if math.isfinite(l) else n  # the top atom: limit (or tail) stays put
         odd = np.arange(1, last, 2)

@@ -421,6 +421,9 @@ class _Once:
             return self._value
 
 
+_MERGE_LOCK = threading.Lock()
+
+
 class _Diagnostics(dict):
     """A plain dict of diagnostics whose costly entries are filled in on first use.
 
@@ -442,14 +445,21 @@ class _Diagnostics(dict):
 
     def _resolve(self):
         pending = self._pending
-        if pending is not None:
+        if pending is None:
+            return
+        extra = pending()  # computed once (thread-safe), outside the merge lock
+        # one merge at a time: between clear() and update() the dict is empty, and a second thread
+        # merging then would keep only the lazy entries
+        with _MERGE_LOCK:
+            if self._pending is None:
+                return
             merged = self._raw()
-            merged.update(pending())
+            merged.update(extra)
             ordered = {k: merged[k] for k in self._order if k in merged}
             ordered.update(merged)
             dict.clear(self)
             dict.update(self, ordered)
-            self._pending = None
+            self._pending = None  # only now may readers skip the lock: the dict is complete
 
     def copy(self):
         if self._pending is None:

@@ -464,7 +464,10 @@ class _Diagnostics(dict):
     def copy(self):
         if self._pending is None:
             return self._raw()
-        return _Diagnostics(self._raw(), self._pending, self._order)
+        with _MERGE_LOCK:  # never copy the dict while another thread merges into it
+            if self._pending is None:
+                return self._raw()
+            return _Diagnostics(self._raw(), self._pending, self._order)
 
     def __reduce__(self):
         self._resolve()

@@ -21,8 +21,10 @@ Arguments arrive as plain Python values:
 * a reference to one cell, or any 1x1 result, as that scalar;
 * a range or array as a 2-D list of rows of such scalars (a 1-D array, such as
   a union of ranges, arrives as a single row);
-* an omitted argument (``F(A1,,3)``) arrives as ``0``: ``formulas`` does not
-  keep the difference;
+* an omitted argument (``F(A1,,3)``) arrives as ``None``, like an empty
+  cell, as xlwings passes it in Excel (``formulas`` compiles it to 0, which
+  would silently mean 0 where the function's default was meant, e.g. zero
+  reinstatements instead of unlimited); Excel's own functions still see 0;
 * errors: if any argument is or contains an error value the function is not
   called and the first error is the result, as with most Excel functions. A
   callable with a true attribute ``accepts_errors`` is called anyway and sees
@@ -96,7 +98,7 @@ from formulas.cell import CellWrapper, InvRangesAssembler, Ref
 from formulas.errors import InvalidRangeName
 from formulas.functions import Array, wrap_ranges_func
 from formulas.ranges import Ranges
-from formulas.tokens.operand import Error, XlError
+from formulas.tokens.operand import Empty, Error, XlError
 
 from .xlsx_values import atomic_output, write_values
 
@@ -183,9 +185,21 @@ def _error_from_xl(err) -> CellError:
     return CellError("#VALUE!", "circular reference")
 
 
+class _Omitted(float):
+    """An omitted argument: 0 to Excel's own functions, None to custom ones."""
+
+    __slots__ = ()
+
+    def __repr__(self):
+        return "<omitted>"
+
+
+_OMITTED = _Omitted(0.0)
+
+
 def _plain_scalar(v):
     """A value from formulas as a plain Python scalar."""
-    if v is sh.EMPTY or v is None:
+    if v is sh.EMPTY or v is None or isinstance(v, _Omitted):
         return None
     if isinstance(v, XlError):
         return _error_from_xl(v)
@@ -881,6 +895,8 @@ def recalculate(source, target=None, *, functions: dict[str, Callable], override
     model = _Model(run)
     with _REGISTRY_LOCK:
         saved = {}
+        compile_empty = Empty.__dict__["compile"]
+        Empty.compile = staticmethod(lambda: _OMITTED)  # an omitted argument, told apart from a typed 0
         try:
             for name, fn in custom.items():
                 adapted = _adapt(name, fn, run)
@@ -914,6 +930,7 @@ def recalculate(source, target=None, *, functions: dict[str, Callable], override
             finally:
                 _fx.tqdm = real_tqdm
         finally:
+            Empty.compile = compile_empty
             for alias, old in saved.items():
                 if old is _MISSING:
                     fx.pop(alias, None)

@@ -121,6 +121,12 @@ _REINSTATEMENT_QUANTITIES = {  # alias -> table label
 }
 
 
+class _NumberError(CellInputError):
+    """A result too large for a number: #NUM!, under the argument that made it."""
+
+    code = "#NUM!"
+
+
 def _help(*names, **docs):
     """``_args`` with help texts from this module's CAPITAL_HELP, then the bridge's HELP, then ``docs``."""
     merged = {n: docs.get(n, CAPITAL_HELP.get(n, HELP.get(n))) for n in names}
@@ -604,12 +610,21 @@ def LW_GROSS_PREMIUM(technical, brokerage=None, expenses=None):
     b = cells.number(brokerage, "brokerage", default=0.0)
     e = cells.number(expenses, "expenses", default=0.0)
     gross_premium(0.0, b, e)  # checks the loads once, before any cell
+
+    def gross(v):
+        t = cells.number(v, "technical", low=0.0)
+        with np.errstate(over="ignore"):
+            x = gross_premium(t, b, e)
+        if not math.isfinite(x):
+            raise _NumberError("technical", f"the gross premium {t:.6g} / {1.0 - b - e:.6g} is too large for a number")
+        return x
+
     if isinstance(technical, (list, tuple, np.ndarray)) and len(cells.grid(technical)[2]) > 1:
         rows = technical.tolist() if isinstance(technical, np.ndarray) else list(technical)
         if not all(isinstance(r, (list, tuple)) for r in rows):
             rows = [[v] for v in rows]  # a 1-D list: one column
-        return [[gross_premium(cells.number(v, "technical", low=0.0), b, e) for v in r] for r in rows]
-    return gross_premium(cells.number(technical, "technical", low=0.0), b, e)
+        return [[gross(v) for v in r] for r in rows]
+    return gross(technical)
 
 
 # =========================================================================== registry

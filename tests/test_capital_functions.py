@@ -476,6 +476,8 @@ def _bad_cases(fs_ref, scen_ref, ylt_ref):
         ("LW_GROSS_PREMIUM", (None,), "#VALUE!", "technical"),
         ("LW_GROSS_PREMIUM", ([[1.0, "x"]], 0.1), "#VALUE!", "technical"),
         ("LW_GROSS_PREMIUM", ("#NUM! LW_PREMIUM(result): is infinite",), "#NUM!", "technical"),
+        ("LW_GROSS_PREMIUM", (1e308, 0.5), "#NUM!", "technical"),  # overflows
+        ("LW_GROSS_PREMIUM", ([[1.0], [1e308]], 0.5), "#NUM!", "technical"),
     ]
 
 

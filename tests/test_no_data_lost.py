@@ -256,9 +256,9 @@ def test_an_omitted_argument_means_the_default_as_in_excel(tmp_path):
     wb = openpyxl.Workbook()
     ws = wb.active
     ws["A1"] = "=LW_MODEL_FREQSEV(\"poisson 2\", \"lognormal 1e6 1.5\")"
-    ws["B1"] = "=LW_PREMIUM(A1, 1e6, 2e6, \"wang 0.3\", , , , 5e5)"  # reinstatements omitted
-    ws["B2"] = "=LW_PREMIUM(A1, 1e6, 2e6, \"wang 0.3\", Z1, Z1, Z1, 5e5)"  # the same cells left empty
-    ws["B3"] = "=LW_PREMIUM(A1, 1e6, 2e6, \"wang 0.3\", 1, \"occurrence\", 0, 5e5)"  # zero reinstatements
+    ws["B1"] = "=LW_PREMIUM(A1, 1000000, 2000000, \"wang 0.3\", , , , 500000)"  # reinstatements omitted
+    ws["B2"] = "=LW_PREMIUM(A1, 1000000, 2000000, \"wang 0.3\", Z1, Z1, Z1, 500000)"  # the same cells left empty
+    ws["B3"] = "=LW_PREMIUM(A1, 1000000, 2000000, \"wang 0.3\", 1, \"occurrence\", 0, 500000)"  # zero reinstatements
     ws["B4"] = "=IF(TRUE,,3)"  # Excel's own functions still see 0
     path = tmp_path / "omitted.xlsx"
     wb.save(path)

@@ -389,8 +389,9 @@ def _empirical(x: np.ndarray):
         return xs, sf
     sf = np.empty(u)
     pos = 0
-    for lo in range(0, n, _BLOCK):
-        hi = min(lo + _BLOCK, n)
+    step = min(_BLOCK, max(_MIN_BLOCK, n // 16))  # block temporaries well below the sample's size
+    for lo in range(0, n, step):
+        hi = min(lo + step, n)
         mask = last[lo:hi]
         ends = np.flatnonzero(mask)
         c = ends.size

@@ -141,7 +141,7 @@ def _table_text(rows: list[list], formats: list[list], columns=None) -> str:
             units.add(m.group(1))
             h = h[:m.start()]
         shown.append(" ".join(h.split()))
-    keep = list(range(len(header)))
+    keep = [j for j, h in enumerate(shown) if h or any(r[j] not in (None, "") for r in rows[1:])]
     if columns:
         keep = [j for want in columns for j, h in enumerate(shown) if h.lower().startswith(want.lower())][: len(columns)]
         keep = list(dict.fromkeys(keep))

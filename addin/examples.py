@@ -735,8 +735,25 @@ def _compare_build() -> tuple[Workbook, list[KeyCell]]:
     s.note(f"A{rt + 2}", "Reading the table: the loss ratio going up each block shows how the family shares the "
                          "same total out between the layers; the further it falls towards the top layers, the more "
                          "the family loads the tail.")
+    # a compact view: each family's loss ratio per layer, read from the blocks above
+    v0 = rt + 4
+    s.label(f"A{v0}", "At a glance: loss ratio by layer and family (from the blocks above)", bold=True)
+    s.header_row(v0 + 1, 1, ["Layer"])
+    for c0 in starts:  # under each family's block
+        cell = ws.cell(v0 + 1, c0, f"={get_column_letter(c0 + 1)}11")
+        cell.fill, cell.font = _HEAD_FILL, _HEAD_FONT
+        cell.alignment = Alignment(horizontal="center", vertical="center", wrap_text=True)
+    for i in range(k + 1):
+        r = v0 + 2 + i
+        src = first + 1 + i
+        s.formula(f"A{r}", f"=A{src}", bold=True)
+        for c0 in starts:
+            s.formula(f"{get_column_letter(c0)}{r}", f"={get_column_letter(c0 + 1)}{src}", RATIO)
+    s.total_style(v0 + 2 + k, 1, 1)
+    for c0 in starts:
+        s.total_style(v0 + 2 + k, c0, c0)
     ws.freeze_panes = "E5"
-    _page(ws, area=f"A1:{last}{rt + 2}")
+    _page(ws, area=f"A1:{last}{v0 + 2 + k}")
     ws.page_setup.paperSize = ws.PAPERSIZE_A3
 
     d = wb.create_sheet("YearLoss")
@@ -755,7 +772,7 @@ def _compare_example() -> Example:
         name="distortion_comparison", filename="distortion_comparison.xlsx",
         title="The same tower under five distortion families",
         description="one column block per distortion family, each charging the same total for the tower",
-        make=_compare_build, model=_hail_model, table="Compare!A14:D19",
+        make=_compare_build, model=_hail_model, table="Compare!A24:Z29",
         text_cells={"Compare!B6": "yearloss#"},
     )
 
@@ -1011,6 +1028,7 @@ def _capital_example() -> Example:
         name="capital", filename="capital.xlsx", title="Capital, target return and allocation",
         description="capital standard, target return, calibrated families, tower prices, allocation by layer and unit",
         make=_capital_build, model=_capital_model, table="Capital!A16:H21",
+        table_columns=("Family", "Parameter", "Premium", "Margin", "Capital", "Return on capital", "Loss ratio"),
         text_cells={"Capital!B10": "yearloss#", "Capital!C17": "wang("},
     )
 

@@ -354,7 +354,22 @@ class atomic_output:
                 with open(self.tmp, "rb+") as fh:
                     os.fsync(fh.fileno())
                 os.replace(self.tmp, self.target)
+                _fsync_folder(self.target.parent)  # the rename itself survives a power cut
         finally:
             if self.tmp.exists():
                 self.tmp.unlink()
         return False
+
+
+def _fsync_folder(folder: Path) -> None:
+    """Flush a folder's entry list (POSIX); where folders cannot be opened (Windows) this does nothing."""
+    try:
+        fd = os.open(folder, os.O_RDONLY)
+    except OSError:
+        return
+    try:
+        os.fsync(fd)
+    except OSError:
+        pass
+    finally:
+        os.close(fd)

@@ -125,12 +125,16 @@ def test_the_copy_is_written_to_a_temporary_file_beside_it_then_renamed(tmp_path
 
     def fsync(fd):
         seen["fsync"] = True
+        if "replace" in seen:
+            seen["folder_synced"] = True  # after the rename: the folder entry is flushed too
         return real_fsync(fd)
 
     monkeypatch.setattr(xlsx_values.os, "replace", replace)
     monkeypatch.setattr(xlsx_values.os, "fsync", fsync)
     recalculate(src, target, functions={"SCALE": scale})
     assert seen["replace"][1] == target
+    if os.name == "posix":
+        assert seen.get("folder_synced")
     assert zipfile.ZipFile(target).testzip() is None
     assert sorted(p.name for p in tmp_path.iterdir()) == ["book.xlsx", "out.xlsx"]
 

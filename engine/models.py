@@ -37,6 +37,7 @@ MAX_SAMPLE_SIZE = 50_000_000  # upper bound on work: rows of a loss table
 _CACHE_ENTRIES = 64
 BEYOND_TARGET = 1e-10  # the automatic grid aims to leave at most this probability beyond its top
 MAX_AUTO_POINTS = 2**18  # automatic ground-up grids: at most this many points
+MAX_BODY_POINTS = 2**20  # ... unless the aggregate's body (many claims) needs more for a bucket of ref / 4
 GROUND_UP_RESOLUTION = 64  # automatic ground-up grids: bucket at most about min(mean, 90% quantile) / 64 (median if no mean)
 _FAR_TOP = 1e300
 
@@ -215,8 +216,17 @@ class FrequencySeverity(LossModel):
         mean_n, var_n = freq.mean, freq.variance
         ms, vs = sev.mean, sev.variance
         targets = []
+        body = []  # the part of the aggregate the grid must hold whatever the bucket (finite moments only)
         if math.isfinite(vs) and math.isfinite(ms):
-            targets.append(mean_n * ms + 12.0 * math.sqrt(mean_n * vs + var_n * ms * ms))
+            sd = math.sqrt(mean_n * vs + var_n * ms * ms)
+            targets.append(mean_n * ms + 12.0 * sd)
+            body.append(mean_n * ms + 6.0 * sd)
+        elif math.isfinite(ms):
+            body.append(2.0 * mean_n * ms)
+        if math.isfinite(ms):
+            # very dispersed counts (negative binomial with a large contagion) reach far beyond 12 sd
+            n_far = _count_quantile(freq, 1.0 - BEYOND_TARGET)
+            targets.append(n_far * ms + (12.0 * math.sqrt(n_far * vs) if math.isfinite(vs) else 0.0))
         targets.append(float(sev.isf(BEYOND_TARGET / max(mean_n, 1.0))))
         finite = [t for t in targets if math.isfinite(t) and t > 0]
         upper = sev.upper
@@ -237,8 +247,15 @@ class FrequencySeverity(LossModel):
             return nice_bucket(max(top / self.grid_length, 1e-300)), int(self.grid_length)
         n = _pow2_points(top / h_fine, 2**12, MAX_AUTO_POINTS)
         # a tail too long for the points is cut (mass beyond is held at the top and reported),
-        # rather than the bucket widened past the resolution of the body
-        return min(nice_bucket(max(top / n, 1e-300)), nice_bucket(h_fine)), int(n)
+        # rather than the bucket widened past the resolution of the severity's body; but the grid
+        # always holds the aggregate's body. With many claims that body needs a wider bucket, which
+        # inflates the severity's second moment by up to h^2 / 4: past ref / 4 more points are used
+        # (up to 2**20) before the bucket grows further.
+        body_top = max([b for b in body if math.isfinite(b) and b > 0], default=0.0)
+        if body_top / n > ref / 4.0:
+            n = _pow2_points(body_top / (ref / 4.0), n, MAX_BODY_POINTS)
+        widest = max(nice_bucket(h_fine), nice_bucket(max(body_top / n, 1e-300)))
+        return min(nice_bucket(max(top / n, 1e-300)), widest), int(n)
 
     def _severity_grid(self, a, l, *, release: bool = False):
         """(bucket, points, probabilities, tail) of the layered severity on its grid.

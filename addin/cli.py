@@ -41,6 +41,7 @@ quotes, offers of cover or advice. Check them against local regulation and have
 them reviewed with licensed actuarial judgement before anyone relies on them.
 """
 
+PROGRESS_BYTES = 20_000_000  # loss tables larger than this are read with a progress bar (on a terminal)
 CAUTION_LINE = "Technical prices, not quotes or advice; check against local regulation and licensed actuarial judgement."
 
 
@@ -556,7 +557,7 @@ def _read_table(path: Path, columns: list[str], *, progress: bool):
     if not path.exists():
         raise UsageError(f"file not found: {path}")
     suffix = path.suffix.lower()
-    big = progress and path.stat().st_size > 20_000_000
+    big = progress and path.stat().st_size > PROGRESS_BYTES
     try:
         if suffix in (".parquet", ".pq"):
             try:

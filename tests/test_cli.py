@@ -354,3 +354,21 @@ def test_tower_bad_input_exits_2(capsys, event_csv, tmp_path):
     for argv, words in cases:
         code, _, err = run(capsys, *argv)
         assert code == EXIT_USAGE and words in err, (argv, err)
+
+
+def test_progress_paths_and_several_workbooks(capsys, monkeypatch, event_csv, rating, tmp_path):
+    monkeypatch.setattr(cli, "PROGRESS_BYTES", 0)  # every file counts as large: read through the progress bar
+    parquet = tmp_path / "events.parquet"
+    pd.read_csv(event_csv).to_parquet(parquet)
+    outs = []
+    for path in (event_csv, parquet):
+        code, out, _ = run(capsys, "tower", "--year-event", str(path), "--year-column", "yr", "--loss-column", "amount",
+                           "--stack", "10m 20m", "--start", "5m", "--distortion", "dual 1.5")
+        assert code == EXIT_OK
+        outs.append(out.split("\n", 1)[1])
+    assert outs[0] == outs[1], "CSV and Parquet give the same tower"
+    second = tmp_path / "second.xlsx"
+    second.write_bytes(Path(rating).read_bytes())
+    code, out, _ = run(capsys, "price", str(rating), str(second))
+    assert code == EXIT_OK and out.count("== ") == 2 and (tmp_path / "second.priced.xlsx").exists()
+    assert run(capsys, "price", str(rating), str(second), "-o", str(tmp_path / "x.xlsx"))[0] == EXIT_USAGE

@@ -248,6 +248,9 @@ def _frame(lead, described, attachment, limit, share, collateral, el, prem, sd, 
     with np.errstate(divide="ignore", invalid="ignore"):
         margin = prem - el
         capital = collateral - prem
+        # a premium equal to the collateral up to the round-off of its sum (e.g. TVaR of a layer exhausted
+        # more often than 1 - p) leaves no capital: not 1e-14 of it with a return of 1e14
+        capital = np.where(np.isfinite(collateral) & (np.abs(capital) <= 1e-12 * np.abs(collateral)), 0.0, capital)
         df = pd.DataFrame({
             **lead,
             "layer": described,

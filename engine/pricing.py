@@ -86,7 +86,12 @@ def _layers_from_frame(df: pd.DataFrame) -> list[Layer]:
     out = []
     for row in df.itertuples(index=False):
         r = row._asdict()
-        basis = str(r.get("basis", "occurrence"))
+        basis = r.get("basis", "occurrence")
+        if basis is None or (isinstance(basis, float) and math.isnan(basis)):
+            basis = "occurrence"  # a blank cell: the default
+        basis = str(basis).strip().lower()
+        if basis not in ("occurrence", "aggregate"):
+            raise InputError("basis", f"must be 'occurrence' or 'aggregate', got {r.get('basis')!r}")
         share = r.get("share", 1.0)
         if basis == "aggregate":
             out.append(Layer.aggregate(r["attachment"], r["limit"], share=share))

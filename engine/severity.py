@@ -328,6 +328,17 @@ SEVERITIES = {
 }
 
 
+_POSITIONAL = {
+    "lognormal": ("mean", "cv"),
+    "pareto": ("shape", "scale"),
+    "single_pareto": ("shape", "threshold"),
+    "gamma": ("mean", "cv"),
+    "weibull": ("shape", "scale"),
+    "exponential": ("mean",),
+    "generalized_pareto": ("shape", "scale"),
+}
+
+
 def make_severity(name: str, *params) -> Severity:
     """Severity by name with positional parameters (as a cell would give them).
 
@@ -337,15 +348,14 @@ def make_severity(name: str, *params) -> Severity:
     if not isinstance(name, str) or not name.strip():
         raise InputError("severity", f"expected a distribution name, got {name!r}")
     key = name.strip().lower().replace(" ", "_").replace("-", "_")
-    if key in ("gamma",):
-        return gamma(mean=params[0] if params else None, cv=params[1] if len(params) > 1 else None)
     ctor = SEVERITIES.get(key)
     if ctor is None:
         return from_scipy(name.strip(), *params)
-    try:
-        return ctor(*params)
-    except TypeError:
-        import inspect
-
-        need = [p for p in inspect.signature(ctor).parameters if p not in ("mu", "sigma", "mean", "cv") or key == "exponential"]
-        raise InputError("parameters", f"{key} takes {len(need)} parameters ({', '.join(need)}), got {len(params)}") from None
+    names = _POSITIONAL[key]
+    if len(params) != len(names):
+        # checked here: a wrong count would otherwise be ignored (gamma took a third value silently)
+        # or reported with the constructor's keyword-only names
+        raise InputError("parameters", f"{key} takes {len(names)} parameter(s) ({', '.join(names)}), got {len(params)}")
+    if key == "gamma":
+        return gamma(mean=params[0], cv=params[1])
+    return ctor(*params)

@@ -813,11 +813,39 @@ def build_parser() -> argparse.ArgumentParser:
              "List the LW_ worksheet functions with their arguments ([optional] in brackets) and a one-line "
              "description; with NAME, the help text of each argument.", cmd_functions)
     fn.add_argument("name", nargs="?", metavar="NAME", help="one function, e.g. LW_PREMIUM")
+
+    # Listed here for the overview; main() hands their arguments to the modules' own parsers.
+    for name, help_text in _DELEGATED_HELP.items():
+        sub.add_parser(name, help=help_text, add_help=False)
     return p
+
+
+_DELEGATED_HELP = {
+    "reference": "print, write or check the function reference (addin/REFERENCE.md)",
+    "excel": "write a macro-enabled workbook (or xlwings.conf) that loads the LW_ functions into desktop Excel",
+    "export": "write the LW_ functions and the engine as one .py file for a Python without this package",
+}
+
+
+def _delegated(name):
+    if name == "reference":
+        from .reference import reference_main
+
+        return reference_main
+    if name == "excel":
+        from .excel_setup import excel_main
+
+        return excel_main
+    from .export import export_main
+
+    return export_main
 
 
 def main(argv=None) -> int:
     """Run the command line; returns the exit code (0 ok, 1 error cells or pricing failed, 2 bad usage)."""
+    argv = list(sys.argv[1:] if argv is None else argv)
+    if argv and argv[0] in _DELEGATED_HELP:
+        return int(_delegated(argv[0])(argv[1:]) or 0)
     parser = build_parser()
     args = parser.parse_args(argv)
     try:

@@ -372,3 +372,23 @@ def test_progress_paths_and_several_workbooks(capsys, monkeypatch, event_csv, ra
     code, out, _ = run(capsys, "price", str(rating), str(second))
     assert code == EXIT_OK and out.count("== ") == 2 and (tmp_path / "second.priced.xlsx").exists()
     assert run(capsys, "price", str(rating), str(second), "-o", str(tmp_path / "x.xlsx"))[0] == EXIT_USAGE
+
+
+def test_delegated_subcommands_reach_their_modules(tmp_path, capsys):
+    from layerwise.addin.cli import main
+
+    assert main(["reference", "--check"]) == 0
+    out = tmp_path / "bundle"
+    out.mkdir()
+    assert main(["export", str(out)]) == 0
+    assert (out / "layerwise_functions.py").stat().st_size > 10_000
+    target = tmp_path / "book.xlsm"
+    assert main(["excel", str(target)]) == 0
+    assert target.exists()
+    capsys.readouterr()
+    with pytest.raises(SystemExit) as stop:
+        main(["--help"])
+    assert stop.value.code == 0
+    listing = capsys.readouterr().out
+    for name in ("reference", "excel", "export"):
+        assert name in listing

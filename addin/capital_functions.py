@@ -186,33 +186,6 @@ def _distortions(value, argument: str = "distortion"):
     return gs if len(gs) > 1 else next(iter(gs.values()))
 
 
-def _tower_terms(attachments, limits, shares, basis, reinstatements, agg_deductibles) -> list[dict]:
-    """Per-layer terms of a tower given the LW_TOWER way (checked before the model is resolved)."""
-    lims = cells.vector(limits, "limits", low=0.0, allow_inf_words=True)
-    if np.any(lims <= 0):
-        raise CellInputError("limits", f"cell {int(np.flatnonzero(lims <= 0)[0]) + 1} must be > 0")
-    k = lims.size
-    atts = cells.vector(attachments, "attachments", low=0.0)
-    if atts.size == 1 and k > 1:
-        if not np.all(np.isfinite(lims[:-1])):
-            raise CellInputError("limits", "only the top layer of a stacked tower may be unlimited")
-        atts = atts[0] + np.concatenate([[0.0], np.cumsum(lims[:-1])])
-    elif atts.size != k:
-        raise CellInputError("attachments", f"needs one attachment per limit ({k}) or a single start, got {atts.size}")
-    share = _per_layer(shares, "shares", k, 1.0, low=0.0)
-    if np.any((share <= 0) | (share > 1)):
-        raise CellInputError("shares", "each share must lie in (0, 1]")
-    rein = _per_layer(reinstatements, "reinstatements", k, math.nan, low=0.0, blanks=True, inf_words=True)
-    rein[np.isposinf(rein)] = math.nan  # 'unlimited'
-    if np.any(np.isfinite(rein) & (rein != np.floor(rein))):
-        raise CellInputError("reinstatements", "must be whole numbers")
-    aad = _per_layer(agg_deductibles, "agg_deductibles", k, 0.0, low=0.0)
-    bas = cells.choice(basis, "basis", functions._BASES, default=None)
-    return [{"attachment": atts[i], "limit": lims[i], "share": share[i], "basis": bas,
-             "reinstatements": None if math.isnan(rein[i]) else int(rein[i]), "agg_deductible": aad[i]}
-            for i in range(k)]
-
-
 def _tower_layers(model, terms: list[dict]):
     layers = []
     for i, t in enumerate(terms):
@@ -325,7 +298,7 @@ def LW_CALIBRATION(model, target_return, standard, level, families=None, columns
 def LW_TARGET_TOWER(model, attachments, limits, target_return, standard, level, families=None, shares=None,
                     basis=None, reinstatements=None, agg_deductibles=None, columns=None):
     """A tower priced with each family calibrated so the whole portfolio earns the target return: one block of rows per family."""
-    terms = _tower_terms(attachments, limits, shares, basis, reinstatements, agg_deductibles)
+    terms = functions._tower_terms(attachments, limits, shares, basis, reinstatements, agg_deductibles)
     t = cells.number(target_return, "target_return")
     std = _standard(standard, level)
     fams = _family_names(families)
@@ -367,7 +340,7 @@ def LW_IMPLIED_PARAMETER(model, attachment, limit, price, family, quote=None, sh
 def LW_IMPLIED_SPREAD(model, attachments, limits, market_layer, price, quote=None, families=None, measure=None,
                       shares=None, basis=None, reinstatements=None, agg_deductibles=None):
     """Every layer priced by each family implied from one layer's market price: a column per family, then low, high and spread."""
-    terms = _tower_terms(attachments, limits, shares, basis, reinstatements, agg_deductibles)
+    terms = functions._tower_terms(attachments, limits, shares, basis, reinstatements, agg_deductibles)
     k = len(terms)
     i = cells.integer(market_layer, "market_layer", low=1)
     if i > k:
@@ -531,7 +504,7 @@ def _year_totals(m: YearEventTable) -> YearLossTable:
 def LW_SENSITIVITY(model, attachments, limits, distortion, shares=None, basis=None, reinstatements=None,
                    agg_deductibles=None, columns=None):
     """Change in each layer's premium per unit change in the distortion parameter, the attachment and the limit."""
-    terms = _tower_terms(attachments, limits, shares, basis, reinstatements, agg_deductibles)
+    terms = functions._tower_terms(attachments, limits, shares, basis, reinstatements, agg_deductibles)
     g = _distortions(distortion)
     with handles.model_in_use(model) as (_, m):
         layers = _tower_layers(m, terms)

@@ -692,6 +692,33 @@ def LW_LAYER_STAT(model, attachment, limit, statistic, level=None, share=None, b
 def LW_TOWER(model, attachments, limits, distortion, shares=None, basis=None, reinstatements=None,
              agg_deductibles=None, columns=None):
     """Price a whole tower of layers: a spilled table with a header row and one row per layer."""
+    terms = _tower_terms(attachments, limits, shares, basis, reinstatements, agg_deductibles)
+    dists = _texts(distortion, "distortion")
+    gs = {}
+    for t in dists:
+        gs.setdefault(t, handles.parse_distortion(t, "distortion"))
+    with handles.model_in_use(model) as (_, m):
+        layers = []
+        for i, t in enumerate(terms):
+            try:
+                layers.append(_layer(m, t))
+            except InputError as exc:
+                arg = {"agg_deductible": "agg_deductibles"}.get(exc.argument, exc.argument)
+                raise CellInputError(arg, f"layer {i + 1}: {exc.message}") from None
+        try:
+            frame = price_layers(m, layers, gs if len(gs) > 1 else next(iter(gs.values())))
+        except InputError as exc:
+            if exc.argument != "limit":
+                raise
+            raise CellInputError("limits", exc.message) from None
+    cols = _columns(columns, list(frame.columns))
+    if "warning" not in cols and frame["warning"].astype(bool).any():
+        cols.append("warning")  # a row outside the grid tolerances always shows why
+    return cells.table_to_cells(frame, cols)
+
+
+def _tower_terms(attachments, limits, shares, basis, reinstatements, agg_deductibles) -> list[dict]:
+    """Per-layer terms of a tower given the LW_TOWER way (checked before the model is resolved)."""
     lims = cells.vector(limits, "limits", low=0.0, allow_inf_words=True)
     if np.any(lims <= 0):
         raise CellInputError("limits", f"cell {int(np.flatnonzero(lims <= 0)[0]) + 1} must be > 0")
@@ -712,30 +739,9 @@ def LW_TOWER(model, attachments, limits, distortion, shares=None, basis=None, re
         raise CellInputError("reinstatements", "must be whole numbers")
     aad = _per_layer(agg_deductibles, "agg_deductibles", k, 0.0, low=0.0)
     bas = cells.choice(basis, "basis", _BASES, default=None)
-    dists = _texts(distortion, "distortion")
-    gs = {}
-    for t in dists:
-        gs.setdefault(t, handles.parse_distortion(t, "distortion"))
-    with handles.model_in_use(model) as (_, m):
-        layers = []
-        for i in range(k):
-            t = {"attachment": atts[i], "limit": lims[i], "share": share[i], "basis": bas,
-                 "reinstatements": None if math.isnan(rein[i]) else int(rein[i]), "agg_deductible": aad[i]}
-            try:
-                layers.append(_layer(m, t))
-            except InputError as exc:
-                arg = {"agg_deductible": "agg_deductibles"}.get(exc.argument, exc.argument)
-                raise CellInputError(arg, f"layer {i + 1}: {exc.message}") from None
-        try:
-            frame = price_layers(m, layers, gs if len(gs) > 1 else next(iter(gs.values())))
-        except InputError as exc:
-            if exc.argument != "limit":
-                raise
-            raise CellInputError("limits", exc.message) from None
-    cols = _columns(columns, list(frame.columns))
-    if "warning" not in cols and frame["warning"].astype(bool).any():
-        cols.append("warning")  # a row outside the grid tolerances always shows why
-    return cells.table_to_cells(frame, cols)
+    return [{"attachment": atts[i], "limit": lims[i], "share": share[i], "basis": bas,
+             "reinstatements": None if math.isnan(rein[i]) else int(rein[i]), "agg_deductible": aad[i]}
+            for i in range(k)]
 
 
 def _per_layer(value, argument, k, default, *, low, blanks=False, inf_words=False) -> np.ndarray:

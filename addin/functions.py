@@ -27,6 +27,7 @@ from __future__ import annotations
 import functools
 import inspect
 import logging
+import warnings
 import math
 
 import numpy as np
@@ -44,7 +45,7 @@ except ImportError:
     xw = types.SimpleNamespace(func=_no_op, arg=_no_op, ret=_no_op)
 
 from layerwise.engine.distortions import Blend, TableDistortion, TVaRDistortion, make_distortion
-from layerwise.engine.errors import InputError
+from layerwise.engine.errors import GridWarning, InputError
 from layerwise.engine.frequency import make_frequency
 from layerwise.engine.layers import Layer
 from layerwise.engine.models import FrequencySeverity, ScenarioTable, YearEventTable, YearLossTable
@@ -57,6 +58,11 @@ from .cells import CellInputError
 __all__ = ["FUNCTIONS", "describe_functions", "cell_function", "CATEGORY", "HELP"]
 
 log = logging.getLogger("layerwise.addin")
+
+# The bridge turns a grid result outside its tolerance into a #NUM! error value or a warning column,
+# so the engine's GridWarning (attributed to the bridge module that called price_layers) would only
+# repeat it in the function server's log, once per distinct message.
+warnings.filterwarnings("ignore", category=GridWarning, module=r"layerwise\.addin(\.|$)")
 
 CATEGORY = "layerwise"  # Excel's function-wizard category
 

@@ -12,9 +12,10 @@
 * Dual power with whole m: 1 - g(S) = (1 - S)^m is the distribution of the
   maximum of m independent copies, so the price is E[max of m copies]
   (exponential: theta * H_m, H_m the harmonic number; the order-statistics
-  fact is textbook probability, recalled from memory; the distortion is in
-  Wang 1996, "Premium calculation by transforming the layer premium density",
-  ASTIN Bulletin 26). Also checked by exact enumeration on a scenario table.
+  fact is textbook probability; the distortion is among those of Wang 1996,
+  "Premium calculation by transforming the layer premium density", ASTIN
+  Bulletin 26; both recalled from memory). Also checked by exact enumeration
+  on a scenario table.
 
 Limited expected values are those of Klugman, Panjer & Willmot, *Loss Models*
 (Appendix A). Grid tolerances (FixedCount(1) models, one loss):

@@ -420,7 +420,7 @@ def _analytic_moments(sev: Severity, f: Frequency, a: float, l: float, top: floa
         "severity_mean": m1,
         "severity_cv": math.sqrt(max(m2 - m1 * m1, 0)) / m1 if m1 > 0 and math.isfinite(m2) else math.nan,
         "mean": agg_mean,
-        "cv": math.sqrt(agg_var) / agg_mean if agg_mean > 0 and math.isfinite(agg_var) else math.nan,
+        "cv": math.sqrt(max(agg_var, 0.0)) / agg_mean if agg_mean > 0 and math.isfinite(agg_var) else math.nan,
         "severity_mean_to_top": to_top,
     }
 

@@ -266,7 +266,7 @@ def _frame(lead, described, attachment, limit, share, collateral, el, prem, sd, 
             "premium": prem,
             "margin": margin,
             "loss_ratio": np.where(prem > 0, el / prem, np.nan),
-            "rate_on_line": prem / (share * limit),
+            "rate_on_line": prem / share / limit,  # not / (share * limit): that product can underflow to 0
             "collateral": collateral,
             "capital": capital,
             # unbounded collateral (unlimited aggregate): no return can be stated, so NaN rather than a plausible 0

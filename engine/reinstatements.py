@@ -138,7 +138,7 @@ def price_with_reinstatements(model: LossModel, attachment: float, limit: float,
         expected_loss=s * el,
         loss_ratio=s * el / tot if tot > 0 else math.nan,
         upfront_loss_ratio=s * el / up if up > 0 else math.nan,
-        rate_on_line=up / (s * lim),
+        rate_on_line=prem / lim,  # = up / (s * lim), without the product that can underflow to 0
         premium_no_reinstatement_cost=s * rho_l,
         reinstatements=n,
         monotone=monotone,

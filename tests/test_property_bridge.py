@@ -393,3 +393,28 @@ def test_no_input_takes_a_function_down(name, models):
 
 def test_budget_is_at_least_ten_thousand_cases():
     assert sum(budget(name) for name in F) >= 10_000, BUDGET  # the default run (SCALE 1)
+
+
+# ----------------------------------------------------------------------------- cases that once failed
+# (found by generated or fuzzed calls; each was an exception inside, reported as the internal error)
+REGRESSIONS = [
+    ("LW_PREMIUM", ("freqsev(poisson 2, lognormal 1e6 1.5)", 1e-308, 5e-324, "ph 0.5")),  # bucket 0: division by zero
+    ("LW_PREMIUM", ("freqsev(poisson 2, lognormal 1e6 1.5)", 0.0, 1e308, "wang 0.3")),  # grid top overflowed to inf
+    ("LW_PREMIUM", ("freqsev(poisson 2, lognormal 1e6 1.5, bucket=1e308)", 0.0, 1e6, "wang 0.3", None, "aggregate")),
+    ("LW_PREMIUM", ("freqsev(poisson 1e7, lognormal 1e6 1.5)", 0.0, 1e6, "wang 0.3")),  # every year beyond the grid
+    ("LW_PREMIUM", ("freqsev(fixed 10000000, exponential 1)", 0.0, 1.0, "ph 0.5")),
+    ("LW_EXPECTED_LOSS", ("freqsev(fixed(n=1), exponential(mean=1))", 1e300, "unlimited", 0.5, None, None, 1e-308)),
+    ("LW_REINSTATEMENT_PREMIUM", ("freqsev(poisson 2, lognormal 1e6 1.5)", 3.0, 1e6, "ph 0.8", 1.0, 1e-308, None)),
+    ("LW_RATE_ON_LINE", ("freqsev(poisson 2, lognormal 1e6 1.5)", 0.0, 1e6, "ph 0.8", 1e-308)),
+    ("LW_SEVERITY", ("invweibull", 0.5)),  # a valid family with a NaN mean in scipy was refused
+    ("LW_PREMIUM", ("freqsev(poisson 2, invweibull(c=0.5, scale=1e6))", 0.0, "unlimited", "ph 0.8")),
+    ("LW_PREMIUM", ("freqsev(poisson 2, invweibull(c=1.5, scale=1e6))", 0.0, 1e6, "ph 0.8")),  # scipy's variance < 0
+]
+
+
+@pytest.mark.parametrize("name, args", REGRESSIONS, ids=[f"{n}-{i}" for i, (n, _) in enumerate(REGRESSIONS)])
+def test_cases_that_once_failed(name, args):
+    with watchdog(WATCHDOG_S, name):
+        out = F[name](*args)
+    check(name, list(args), out)
+    check_reference(name, out)

@@ -179,11 +179,11 @@ BAD_DISTORTIONS = DISTORTIONS[10:]
 POOLS = {
     "attachment": amounts, "attachments": st.one_of(amounts, tower(amounts)),
     "limit": limits, "limits": mix(tower(positive), tower(limits)), "breaks": st.one_of(st.none(), tower(positive)),
-    "share": mix([None, 1.0, 0.5, 0.25], [0.0, 1.5, -0.1]),
+    "share": mix([None, 1.0, 0.5, 0.25], [0.0, 1.5, -0.1, 1e-308, 5e-324]),
     "shares": mix(st.one_of(st.sampled_from([None, 0.5, 1.0]), tower(st.sampled_from([0.5, 1.0, 0.1]))), [0.0, 2.0]),
     "basis": mix([None, None, "occurrence", "aggregate", "Annual", "per event"], ["monthly"]),
     "reinstatements": mix([None, None, 0.0, 1.0, 2.0, "unlimited"], [1.5, -1.0]),
-    "agg_deductible": mix([None, None, 0.0, 1e6], [-5.0]),
+    "agg_deductible": mix([None, None, 0.0, 1e6], [-5.0, 1e-308, 1e308]),
     "agg_deductibles": mix(st.one_of(st.sampled_from([None, 0.0, 1e6]), tower(st.sampled_from([0.0, 5e5]))), [-1.0]),
     "distortion": mix(GOOD_DISTORTIONS, st.one_of(st.sampled_from(BAD_DISTORTIONS), tower(st.sampled_from(DISTORTIONS[:6]), st.integers(1, 3)))),
     "distortions": tower(mix(GOOD_DISTORTIONS, BAD_DISTORTIONS), st.integers(1, 4)),

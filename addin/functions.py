@@ -49,7 +49,7 @@ from layerwise.engine.errors import GridWarning, InputError
 from layerwise.engine.frequency import make_frequency
 from layerwise.engine.layers import Layer
 from layerwise.engine.models import FrequencySeverity, ScenarioTable, YearEventTable, YearLossTable
-from layerwise.engine.pricing import COLUMNS, layer_statistics, price_layers
+from layerwise.engine.pricing import COLUMNS, _mean_note, layer_statistics, price_layers
 from layerwise.engine.severity import make_severity
 
 from . import cells, handles
@@ -815,6 +815,9 @@ def LW_MODEL_INFO(model):
                 ["probability beyond grid", d.get("beyond", math.nan)],
                 ["annual mean (exact)", d.get("mean", math.nan)],
                 ["annual cv (exact)", d.get("cv", math.nan)],
+                ["severity mean on the grid", d.get("severity_mean_grid", math.nan)],
+                ["severity mean to the grid top (exact)", d.get("severity_mean_to_top", math.nan)],
+                ["grid check", _mean_note(d) or "within tolerance"],
             ]
     rows += [["memory bytes", handles.CACHE.size_of(ref)], ["builds", handles.build_count(ref)]]
     return [["property", "value"]] + [[k, cells._table_value(v)] for k, v in rows]

@@ -283,3 +283,11 @@ def test_grid_length_and_sample_size_are_bounded(monkeypatch):
     out = F["LW_MODEL_YEARLOSS"]([[1.0]] * 1001)
     info = cells.parse_error(out)
     assert info.code == "#VALUE!" and "at most 1,000" in info.message
+
+
+def test_model_info_shows_the_grid_check():
+    good = dict(map(tuple, F["LW_MODEL_INFO"]("freqsev(poisson 2, lognormal 1e6 1.5)")[1:]))
+    assert good["grid check"] == "within tolerance"
+    assert abs(good["severity mean on the grid"] / good["severity mean to the grid top (exact)"] - 1) <= pricing.MEAN_TOLERANCE
+    coarse = dict(map(tuple, F["LW_MODEL_INFO"]("freqsev(poisson 2, exponential 1e6, bucket=1e6, method=rounding)")[1:]))
+    assert "differs from the exact" in coarse["grid check"]

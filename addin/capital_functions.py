@@ -186,17 +186,6 @@ def _distortions(value, argument: str = "distortion"):
     return gs if len(gs) > 1 else next(iter(gs.values()))
 
 
-def _tower_layers(model, terms: list[dict]):
-    layers = []
-    for i, t in enumerate(terms):
-        try:
-            layers.append(_layer(model, t))
-        except InputError as exc:
-            arg = {"agg_deductible": "agg_deductibles"}.get(exc.argument, exc.argument)
-            raise CellInputError(arg, f"layer {i + 1}: {exc.message}") from None
-    return layers
-
-
 def _grid_note(model, layer: Layer, g) -> str:
     """The engine's grid warning for ``layer`` priced at ``g`` ("" when within the tolerances)."""
     return str(price_layers(model, [layer], g).iloc[0].get("warning", "") or "")
@@ -304,7 +293,7 @@ def LW_TARGET_TOWER(model, attachments, limits, target_return, standard, level, 
     fams = _family_names(families)
     with handles.model_in_use(model) as (_, m):
         with _engine(limit="limits"):
-            frame = price_at_target(m, _tower_layers(m, terms), t, std, fams)
+            frame = price_at_target(m, functions._tower_layers(m, terms), t, std, fams)
     return _table(frame, columns)
 
 
@@ -350,7 +339,7 @@ def LW_IMPLIED_SPREAD(model, attachments, limits, market_layer, price, quote=Non
     fams = _family_names(families)
     what = cells.choice(measure, "measure", _MEASURES, default="premium")
     with handles.model_in_use(model) as (_, m):
-        layers = _tower_layers(m, terms)
+        layers = functions._tower_layers(m, terms)
         with _engine(premium="price", rate_on_line="price", limit="limits"):
             frame = implied_spread(m, layers, i - 1, families=fams, measure=what, **{how: observed})
             notes = [""] * k
@@ -507,7 +496,7 @@ def LW_SENSITIVITY(model, attachments, limits, distortion, shares=None, basis=No
     terms = functions._tower_terms(attachments, limits, shares, basis, reinstatements, agg_deductibles)
     g = _distortions(distortion)
     with handles.model_in_use(model) as (_, m):
-        layers = _tower_layers(m, terms)
+        layers = functions._tower_layers(m, terms)
         with _engine(limit="limits"):
             frame = price_sensitivities(m, layers, g)
             notes = _warnings(m, layers, g)

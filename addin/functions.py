@@ -704,13 +704,7 @@ def LW_TOWER(model, attachments, limits, distortion, shares=None, basis=None, re
     for t in dists:
         gs.setdefault(t, handles.parse_distortion(t, "distortion"))
     with handles.model_in_use(model) as (_, m):
-        layers = []
-        for i, t in enumerate(terms):
-            try:
-                layers.append(_layer(m, t))
-            except InputError as exc:
-                arg = {"agg_deductible": "agg_deductibles"}.get(exc.argument, exc.argument)
-                raise CellInputError(arg, f"layer {i + 1}: {exc.message}") from None
+        layers = _tower_layers(m, terms)
         try:
             frame = price_layers(m, layers, gs if len(gs) > 1 else next(iter(gs.values())))
         except InputError as exc:
@@ -748,6 +742,18 @@ def _tower_terms(attachments, limits, shares, basis, reinstatements, agg_deducti
     return [{"attachment": atts[i], "limit": lims[i], "share": share[i], "basis": bas,
              "reinstatements": None if math.isnan(rein[i]) else int(rein[i]), "agg_deductible": aad[i]}
             for i in range(k)]
+
+
+def _tower_layers(model, terms: list[dict]):
+    """Engine layers from tower terms; a bad layer is reported with its position."""
+    layers = []
+    for i, t in enumerate(terms):
+        try:
+            layers.append(_layer(model, t))
+        except InputError as exc:
+            arg = {"agg_deductible": "agg_deductibles"}.get(exc.argument, exc.argument)
+            raise CellInputError(arg, f"layer {i + 1}: {exc.message}") from None
+    return layers
 
 
 def _per_layer(value, argument, k, default, *, low, blanks=False, inf_words=False) -> np.ndarray:

@@ -235,6 +235,13 @@ def _describe(v) -> str:
 
 
 # --------------------------------------------------------------------------- scalars
+def _default_for_empty(argument: str, default):
+    """The default for an empty cell, or the error that the argument is required."""
+    if default is MISSING:
+        raise CellInputError(argument, "is required (the cell is empty)")
+    return default
+
+
 def number(
     value,
     argument: str,
@@ -249,9 +256,7 @@ def number(
     """A finite float in the interval (inf allowed, also as the word "unlimited", when ``allow_inf``)."""
     v = single(value, argument)
     if is_empty(v):
-        if default is MISSING:
-            raise CellInputError(argument, "is required (the cell is empty)")
-        return default
+        return _default_for_empty(argument, default)
     _check_error(v, argument)
     if isinstance(v, str) and allow_inf and v.strip().lower() in INF_WORDS:
         v = math.inf
@@ -275,9 +280,7 @@ def text(value, argument: str, *, default=MISSING) -> str:
     """Non-empty text, stripped."""
     v = single(value, argument)
     if is_empty(v):
-        if default is MISSING:
-            raise CellInputError(argument, "is required (the cell is empty)")
-        return default
+        return _default_for_empty(argument, default)
     _check_error(v, argument)
     if not isinstance(v, str):
         raise CellInputError(argument, f"expected text, got {_describe(v)}")
@@ -304,9 +307,7 @@ def boolean(value, argument: str, *, default=MISSING) -> bool:
     """TRUE/FALSE, 1/0, or the words true/false, yes/no."""
     v = single(value, argument)
     if is_empty(v):
-        if default is MISSING:
-            raise CellInputError(argument, "is required (the cell is empty)")
-        return default
+        return _default_for_empty(argument, default)
     _check_error(v, argument)
     if isinstance(v, bool):
         return v

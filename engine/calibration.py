@@ -123,6 +123,13 @@ def _solve(price, cls: type[Distortion], target: float) -> float:
 
 
 # --------------------------------------------------------------------------- target return
+def _as_series(result) -> pd.Series:
+    """A result as a Series, its distortion shown by label."""
+    d = asdict(result)
+    d["distortion"] = result.distortion.label()
+    return pd.Series(d)
+
+
 @dataclass(frozen=True)
 class CalibrationResult:
     """A family's parameter calibrated so the portfolio earns ``return_on_capital`` at ``standard``."""
@@ -140,10 +147,7 @@ class CalibrationResult:
     return_on_capital: float
     leverage: float
 
-    def as_series(self) -> pd.Series:
-        d = asdict(self)
-        d["distortion"] = self.distortion.label()
-        return pd.Series(d)
+    as_series = _as_series
 
 
 def calibrate_to_return(model, target_return: float, standard: CapitalStandard, family) -> CalibrationResult:
@@ -277,10 +281,7 @@ class ImpliedResult:
     rate_on_line: float
     loss_ratio: float
 
-    def as_series(self) -> pd.Series:
-        d = asdict(self)
-        d["distortion"] = self.distortion.label()
-        return pd.Series(d)
+    as_series = _as_series
 
 
 def _layer_pricer(model: LossModel, layer: Layer):

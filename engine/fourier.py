@@ -10,12 +10,14 @@ matching"); both are written through the discretised survival at grid points:
     moment:   S_d(k h) = (1/h) * integral_{kh}^{(k+1)h} S(x) dx   (mean preserved)
 
 The moment integral is Simpson's rule on each bucket, exact to O(h^4) for
-smooth S. Where S bends too sharply for that (the body of a lognormal with a
-large cv inside the first buckets, a kink such as a single-parameter Pareto's
-threshold, a density infinite at 0 as for gamma or Weibull shapes below 1)
-Simpson alone loses up to 1e-3 of the mean, so buckets whose trapezoid and
-midpoint values differ by more than ``REFINE_ABOVE`` are integrated again by
-4 x 16-point Gauss-Legendre, and the first bucket on pieces shrinking
+smooth S. Where S bends (trapezoid and midpoint values differ by more than
+``BEND_ABOVE``) Simpson is also taken on the bucket's halves and the two
+extrapolated (Boole's rule, O(h^6)). Where even they differ by more than
+``REFINE_ABOVE`` (the body of a lognormal with a large cv inside the first
+buckets, a kink such as a single-parameter Pareto's threshold, a density
+infinite at 0 as for gamma or Weibull shapes below 1: Simpson alone loses up
+to 1e-3 of the mean there) the bucket is integrated again by 4 x 16-point
+Gauss-Legendre, and the first bucket always on pieces shrinking
 geometrically towards its left end.
 
 The aggregate is computed with numpy's real FFT on a zero-padded grid after
@@ -37,11 +39,13 @@ METHODS = ("moment", "rounding")
 MAX_GRID_LENGTH = 2**22  # upper bound on work per model: 4M points, about 100 MB of transform
 TILT = 20.0  # total log-damping over the padded grid; keeps round-off amplification below e^(TILT/padding)
 ROUNDOFF = 1e-15  # grid probabilities below this are transform round-off, set to zero
-REFINE_ABOVE = 1e-9  # |trapezoid - midpoint| of S on a bucket above which Simpson is not trusted
+BEND_ABOVE = 1e-9  # |trapezoid - midpoint| of S on a bucket above which Simpson is checked on the halves
+REFINE_ABOVE = 1e-12  # |Simpson - Simpson on halves| of S's mean on a bucket above which neither is trusted
 REFINE_MAX = 4096  # at most this many buckets re-integrated (the sharpest bends first): about 64 sf calls each
 _GL_X, _GL_W = np.polynomial.legendre.leggauss(16)
 _GL_X, _GL_W = 0.5 * (_GL_X + 1.0), 0.5 * _GL_W  # on [0, 1]
 _EVEN = np.linspace(0.0, 1.0, 5)  # 4 equal pieces of a bucket
+_QUARTER_ENDS = np.array([0.25, 0.75])
 _GEOMETRIC = np.concatenate([[0.0], 2.0 ** np.arange(-30, 1)])  # pieces halving towards the bucket's left end
 
 
@@ -79,9 +83,20 @@ def discretise(sf, h: float, n: int, attachment: float = 0.0, limit: float = mat
         mids = np.asarray(sf(attachment + (k + 0.5) * h), dtype=float)
         sd = (edges[:-1] + 4.0 * mids + edges[1:]) / 6.0
         bend = np.abs(0.5 * (edges[:-1] + edges[1:]) - mids)  # 3/2 of Simpson's correction to the trapezoid
-        sharp = np.flatnonzero(bend > REFINE_ABOVE)
-        if sharp.size > REFINE_MAX:
-            sharp = sharp[np.argpartition(bend[sharp], -REFINE_MAX)[-REFINE_MAX:]]
+        # where S bends, Simpson on the bucket's halves too (two more points), extrapolated (Boole's
+        # rule, O(h^6)) where the two agree, and Gauss-Legendre on pieces where they do not
+        bent = np.flatnonzero(bend > BEND_ABOVE)
+        sharp = bent
+        if bent.size:
+            quarters = np.asarray(sf(attachment + (bent[:, None] + _QUARTER_ENDS) * h), dtype=float).reshape(-1, 2)
+            lo, hi, mid = edges[bent], edges[bent + 1], mids[bent]
+            halves = (lo + 4.0 * quarters[:, 0] + 2.0 * mid + 4.0 * quarters[:, 1] + hi) / 12.0
+            change = np.abs(halves - sd[bent])
+            sd[bent] = halves + (halves - sd[bent]) / 15.0
+            keep = change > REFINE_ABOVE
+            sharp, change = bent[keep], change[keep]
+            if sharp.size > REFINE_MAX:
+                sharp = sharp[np.argpartition(change, -REFINE_MAX)[-REFINE_MAX:]]
         sharp = sharp[sharp > 0]
         if sharp.size:
             sd[sharp] = _bucket_means(sf, attachment + sharp * h, h, _EVEN)

@@ -818,6 +818,8 @@ def LW_MODEL_INFO(model):
                 ["grid bucket", d.get("bucket", math.nan)],
                 ["grid points", d.get("grid_length", math.nan)],
                 ["grid top", d.get("grid_top", math.nan)],
+                *([["grid bucket above the body", d["tail_bucket"]], ["grid body top", d["body_top"]]]
+                  if "tail_bucket" in d else []),
                 ["probability beyond grid", d.get("beyond", math.nan)],
                 ["annual mean (exact)", d.get("mean", math.nan)],
                 ["annual cv (exact)", d.get("cv", math.nan)],

@@ -310,6 +310,7 @@ def _grid_density(dist: LossDistribution, h: float) -> np.ndarray:
 
 def _grid_conditional_means(models):
     """Sum of independent grid units by FFT, and E[X_i | X = x] from ((x f_i) * f_others)(x)."""
+    models = [m.uniform_grid() for m in models]  # one bucket over each unit's whole grid
     grids = [m.grid() for m in models]
     h = grids[0][0]
     for (hi, _), m in zip(grids, models):

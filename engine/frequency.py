@@ -33,6 +33,20 @@ class Frequency:
     def pmf(self, k):
         return self._scipy().pmf(k)
 
+    def thinned_ppf(self, q: float, p: float) -> float:
+        """Quantile of the number of claims when each one counts independently with probability ``p``.
+
+        (E.g. the claims that reach a layer's attachment.) Poisson, negative
+        binomial and binomial counts thin to the same family with the mean
+        times p (same contagion); a fixed count thins to a binomial.
+        """
+        if not p > 0:
+            return 0.0
+        return float(self._scipy_thinned(min(float(p), 1.0)).ppf(q))
+
+    def _scipy_thinned(self, p: float):  # pragma: no cover - abstract
+        raise NotImplementedError
+
     @property
     def max_count(self) -> float:
         """Largest possible number of claims (inf when unbounded)."""
@@ -58,6 +72,9 @@ class Poisson(Frequency):
     def _scipy(self):
         return stats.poisson(self.mean)
 
+    def _scipy_thinned(self, p):
+        return stats.poisson(self.mean * p)
+
 
 @dataclass(frozen=True)
 class NegativeBinomial(Frequency):
@@ -82,8 +99,10 @@ class NegativeBinomial(Frequency):
         return (1.0 - self.contagion * self.mean * (z - 1.0)) ** (-1.0 / self.contagion)
 
     def _scipy(self):
-        r = 1.0 / self.contagion
-        return stats.nbinom(r, 1.0 / (1.0 + self.contagion * self.mean))
+        return self._scipy_thinned(1.0)
+
+    def _scipy_thinned(self, p):
+        return stats.nbinom(1.0 / self.contagion, 1.0 / (1.0 + self.contagion * self.mean * p))
 
 
 @dataclass(frozen=True)
@@ -118,6 +137,9 @@ class Binomial(Frequency):
     def _scipy(self):
         return stats.binom(self.n, self.q)
 
+    def _scipy_thinned(self, p):
+        return stats.binom(self.n, self.q * p)
+
 
 @dataclass(frozen=True)
 class FixedCount(Frequency):
@@ -151,6 +173,9 @@ class FixedCount(Frequency):
 
     def pmf(self, k):
         return np.where(np.asarray(k) == self.n, 1.0, 0.0)
+
+    def _scipy_thinned(self, p):
+        return stats.binom(self.n, p)
 
 
 def poisson(mean) -> Poisson:

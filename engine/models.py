@@ -38,6 +38,10 @@ _CACHE_ENTRIES = 64
 BEYOND_TARGET = 1e-10  # the automatic grid aims to leave at most this probability beyond its top
 MAX_AUTO_POINTS = 2**18  # automatic ground-up grids: at most this many points
 MAX_BODY_POINTS = 2**20  # ... unless the aggregate's body (many claims) needs more for a bucket of ref / 4
+BODY_BEYOND = 1e-4  # a split automatic grid keeps full resolution up to where about this probability lies beyond
+MIN_BODY_POINTS = 2**12  # ... on at least this many points
+SPLIT_FACTOR = 4  # split only grids at least this many times longer than their body
+COARSE_PER_BODY = 2  # the coarse grid of a split one has this many times the body's points
 GROUND_UP_RESOLUTION = 64  # automatic ground-up grids: bucket at most about min(mean, 90% quantile) / 64 (median if no mean)
 _FAR_TOP = 1e300
 
@@ -196,7 +200,10 @@ class FrequencySeverity(LossModel):
         """(bucket, grid_length) used for the given per-occurrence terms."""
         freq, sev = self.frequency, self.severity
         if math.isfinite(occ_limit):
-            n_top = max(_count_quantile(freq, 1.0 - 1e-12), 1.0)
+            # the grid holds (far quantile + 1) limits of the claims that reach the attachment: a high
+            # layer, reached rarely, gets as many buckets per limit on a shorter grid
+            reach = float(sev.sf(occ_attachment)) if occ_attachment > 0 else 1.0
+            n_top = max(_count_quantile(freq, 1.0 - 1e-12, reach if math.isfinite(reach) else 1.0), 1.0)
             n = self.grid_length or int(min(max(2 ** math.ceil(math.log2(512 * n_top + 1)), 2**12), 2**20))
             if self.bucket is not None:
                 h = self.bucket
@@ -257,9 +264,74 @@ class FrequencySeverity(LossModel):
         widest = max(nice_bucket(h_fine), nice_bucket(max(body_top / n, 1e-300)))
         return min(nice_bucket(max(top / n, 1e-300)), widest), int(n)
 
-    def _severity_grid(self, a, l, *, release: bool = False):
-        """(bucket, points, probabilities, tail) of the layered severity on its grid.
+    def body_points(self, occ_attachment: float = 0.0, occ_limit: float = math.inf) -> int:
+        """Points of the fine part of the grid: ``grid()[1]`` unless the grid is split (see :meth:`annual`).
 
+        An automatic ground-up grid much longer than the aggregate's body needs
+        is split in two: the body, up to where about ``BODY_BEYOND`` of
+        probability lies beyond, at the full resolution ``grid()[0]``, and the
+        whole range up to the grid top at a bucket ``n / body`` times coarser,
+        used only above the body. Both are far shorter transforms than one
+        grid of the full length at the fine bucket.
+        """
+        a, l = float(occ_attachment), float(occ_limit)
+        h, n = self.grid(a, l)
+        if self.bucket is not None or self.grid_length is not None or math.isfinite(l):
+            return n
+        freq, sev = self.frequency, self.severity
+        reach = [float(sev.isf(BODY_BEYOND / max(freq.mean, 1.0)))]
+        ms, vs = sev.mean, sev.variance
+        if math.isfinite(ms) and math.isfinite(vs):
+            reach.append(freq.mean * ms + 12.0 * math.sqrt(freq.mean * vs + freq.variance * ms * ms))
+        reach = max([r for r in reach if math.isfinite(r) and r > 0], default=math.inf)
+        body = _pow2_points(reach / h, MIN_BODY_POINTS, n)
+        return body if SPLIT_FACTOR * body <= n else n
+
+    def resolution(self, occ_attachment: float = 0.0, occ_limit: float = math.inf) -> tuple:
+        """((start, bucket), ...): the grid's bucket from each start up to the next (or the grid top).
+
+        ``((0.0, grid()[0]),)`` for an ordinary grid; a split one (see
+        :meth:`body_points`) adds the coarse bucket from the body's top.
+        """
+        h, n = self.grid(occ_attachment, occ_limit)
+        body = self.body_points(occ_attachment, occ_limit)
+        if body == n:
+            return ((0.0, h),)
+        coarse_points = max(COARSE_PER_BODY * body, MIN_BODY_POINTS)
+        return ((0.0, h), (body * h, h * (n // coarse_points)))  # an exact power-of-2 multiple of h
+
+    def uniform_grid(self) -> "FrequencySeverity":
+        """This model on one uniform grid of ``grid()`` (never split), for sums of units on a common grid.
+
+        Itself when its grid is not split; otherwise a twin with that bucket and
+        length, kept (with its cached distributions) on this model.
+        """
+        h, n = self.grid()
+        if self.body_points() == n:
+            return self
+        twin = self.__dict__.get("_uniform_twin")
+        if twin is None:
+            twin = FrequencySeverity(self.frequency, self.severity, bucket=h, grid_length=n, method=self.method,
+                                     padding=self.padding)
+            object.__setattr__(self, "_uniform_twin", twin)
+        return twin
+
+    def cache_nbytes(self) -> int:
+        twin = self.__dict__.get("_uniform_twin")
+        return super().cache_nbytes() + (twin.cache_nbytes() if twin is not None else 0)
+
+    def clear_cache(self):
+        super().clear_cache()
+        object.__setattr__(self, "_uniform_twin", None)
+
+    def _pieces(self, a, l, *, release: bool = False) -> tuple:
+        """The grids the annual distribution is computed on, with their discretised severities.
+
+        Each piece is (bucket, points, probabilities, tail, first used index,
+        end of used indices): one piece for an ordinary grid; for a split grid
+        the body (bucket h on twice its used length, so that the transform's
+        round-off, amplified towards the end of a tilted grid, stays small where
+        it is used) and the whole range at the coarse bucket, used from the body's top.
         The last one computed is remembered (read-only), so that the coarse
         distribution price_layers asks for right after the fine one does not
         discretise the severity again; ``release`` drops it after use.
@@ -270,34 +342,78 @@ class FrequencySeverity(LossModel):
                 object.__setattr__(self, "_severity_memo", None)
             return memo[1]
         h, n = self.grid(a, l)
-        probs, tail = discretise(self.severity.sf, h, n, a, l, self.method)
-        probs.flags.writeable = False
-        out = (h, n, probs, tail)
+        parts = self.resolution(a, l)
+        if len(parts) == 1:
+            plan = ((h, n, 0, n),)
+        else:
+            body = self.body_points(a, l)
+            (_, h), (body_top, wide) = parts
+            points = int(round(n * h / wide))
+            plan = ((h, 2 * body, 0, body), (wide, points, body_top / wide, points))
+        out = []
+        for bucket, points, start, stop in plan:
+            probs, tail = discretise(self.severity.sf, bucket, points, a, l, self.method)
+            probs.flags.writeable = False
+            out.append((bucket, points, probs, tail, int(round(start)), stop))
+        out = tuple(out)
         object.__setattr__(self, "_severity_memo", None if release else ((a, l), out))
         return out
 
+    def _aggregate(self, pieces, l) -> LossDistribution:
+        """The annual distribution from the pieces' severities (see :meth:`_pieces`)."""
+        results = [aggregate(self.frequency.pgf, probs, tail, self.padding, self.frequency.max_count)
+                   for _, _, probs, tail, _, _ in pieces]
+        h, n = pieces[0][0], pieces[0][1]
+        if len(pieces) == 1:
+            agg, beyond = results[0]
+            return _grid_distribution(np.arange(n, dtype=float) * h, agg, beyond, n * h)
+        (_, _, _, _, _, stop), (wide, points, _, _, start, _) = pieces
+        body = results[0][0][:stop]
+        top_mass = max(1.0 - float(body.sum()), 0.0)  # the body's probability at or above its top
+        tail_agg, tail_beyond = results[1]
+        # Above the body's top the survival steps are the coarse grid's own, P(X > k H), each
+        # standing for the mean of S over [k H, (k + 1) H]; the atom at the top takes what the
+        # body leaves above it less the coarse survival there. (Cutting the coarse masses at the
+        # top instead gives an error of the order of H: its atom there stands for mass on both sides.)
+        upper = tail_agg[start + 1 :]
+        above = float(upper.sum()) + tail_beyond  # coarse P(X > top of the body)
+        scale = 1.0
+        if above > top_mass:  # the two grids disagree by more than the step: no negative atom, shrink the tail
+            scale = top_mass / above
+        values = np.arange(stop + points - start, dtype=float)
+        values[:stop] *= h
+        values[stop:] = np.arange(start, points, dtype=float) * wide
+        probs = np.concatenate([body, [max(top_mass - above * scale, 0.0)], upper * scale])
+        return _grid_distribution(values, probs, tail_beyond * scale, points * wide)
+
     def _annual(self, a, l):
-        h, n, probs, tail = self._severity_grid(a, l)
+        pieces = self._pieces(a, l)
         sev = self.severity
-        agg, beyond = aggregate(self.frequency.pgf, probs, tail, self.padding, self.frequency.max_count)
-        grid = np.arange(n, dtype=float) * h
-        diag = {"bucket": h, "grid_length": n, "method": self.method, "grid_top": n * h, "beyond": beyond}
-        k = grid
+        dist = self._aggregate(pieces, l)
+        h, n = self.grid(a, l)
+        diag = {"bucket": h, "grid_length": n, "method": self.method, "grid_top": n * h, "beyond": dist.beyond}
+        if len(pieces) > 1:
+            diag["body_points"], diag["body_top"], diag["tail_bucket"] = pieces[0][5], pieces[0][5] * h, pieces[1][0]
+        # the severity's grid moments from the piece that reaches the top
+        bucket, points, probs, tail = pieces[-1][:4]
+        k = np.arange(points, dtype=float) * bucket
         # einsum, not @: a BLAS dot of this size wakes OpenBLAS's threads, which on a busy
         # 2-core machine costs 10-20 ms per call instead of 20 microseconds
-        d_m1 = float(np.einsum("i,i->", probs, k) + tail * n * h)
+        d_m1 = float(np.einsum("i,i->", probs, k) + tail * points * bucket)
         d_m2 = float(np.einsum("i,i->", probs, k * k))
         diag["severity_mean_grid"] = d_m1
         diag["severity_cv_grid"] = math.sqrt(max(d_m2 - d_m1 * d_m1, 0)) / d_m1 if d_m1 > 0 else math.nan
-        dist = _grid_distribution(grid, agg, beyond, n * h)
-        gm, second, _ = dist.layer_profile(0.0, math.inf)  # mean and E[X^2] in one pass: dist.mean(), dist.std()
-        diag["mean_grid"] = gm
-        diag["cv_grid"] = math.sqrt(max(second - gm * gm, 0.0)) / gm if gm > 0 else math.nan
-        # the analytic layered severity moments (for comparison with the grid) need adaptive
-        # quadrature for a per-occurrence layer, which costs more than the whole grid: computed
-        # on first read of the diagnostics
-        freq, top = self.frequency, n * h
-        object.__setattr__(dist, "diagnostics", _Diagnostics(diag, _Once(lambda: _analytic_moments(sev, freq, a, l, top)), _DIAGNOSTIC_KEYS))
+        # the exact layered severity mean the grid's must match (read by every price), by one quadrature
+        diag["severity_mean_to_top"] = to_top = _mean_to_top(sev, a, l, n * h)
+        # the other analytic moments need more adaptive quadrature, and the grid moments a pass over
+        # the distribution: together they cost more than the grid, so they are computed on first
+        # read of the diagnostics (price_layers only peeks at the entries above)
+        freq = self.frequency
+
+        def pending():
+            return {**_analytic_moments(sev, freq, a, l, to_top), **_grid_moments(dist)}
+
+        object.__setattr__(dist, "diagnostics", _Diagnostics(diag, _Once(pending), _DIAGNOSTIC_KEYS))
         return dist
 
     # -- numerical guards ----------------------------------------------------
@@ -321,16 +437,17 @@ class FrequencySeverity(LossModel):
         return self._cache.get(("coarse", a, l), lambda: self._coarse(a, l))
 
     def _coarse(self, a, l):
-        h, n, probs, tail = self._severity_grid(a, l, release=True)
-        ext = np.append(probs, tail)
-        last = int(round(l / h)) if math.isfinite(l) else n  # the top atom: limit (or tail) stays put
-        odd = np.arange(1, last, 2)
-        half = 0.5 * ext[odd]
-        ext[odd] = 0.0
-        ext[odd - 1] += half
-        ext[odd + 1] += half
-        agg, beyond = aggregate(self.frequency.pgf, ext[:n], float(ext[n]), self.padding, self.frequency.max_count)
-        return _grid_distribution(np.arange(n, dtype=float) * h, agg, beyond, n * h)
+        pieces = []
+        for bucket, points, probs, tail, start, stop in self._pieces(a, l, release=True):
+            ext = np.append(probs, tail)
+            last = int(round(l / bucket)) if math.isfinite(l) else points  # the top atom: limit (or tail) stays put
+            odd = np.arange(1, last, 2)
+            half = 0.5 * ext[odd]
+            ext[odd] = 0.0
+            ext[odd - 1] += half
+            ext[odd + 1] += half
+            pieces.append((bucket, points, ext[:points], float(ext[points]), start, stop))
+        return self._aggregate(tuple(pieces), l)
 
     def beyond_tail(self, dist: LossDistribution, occ_attachment: float, occ_limit: float, start: float, distortion=None) -> float:
         """Estimate of integral_start^inf g(S(x)) dx for the part of an unlimited layer above ``dist.top``.
@@ -398,31 +515,34 @@ _DIAGNOSTIC_KEYS = (
 )
 
 
-def _analytic_moments(sev: Severity, f: Frequency, a: float, l: float, top: float = math.inf) -> dict:
-    """Mean and cv of the layered severity min(max(X - a, 0), l) and of the annual total, by quadrature.
+def _mean_to_top(sev: Severity, a: float, l: float, top: float) -> float:
+    """E[min(max(X - a, 0), l, top)] by quadrature: what the grid's severity mean must match,
+    whatever lies beyond the grid top."""
+    if l <= top:
+        return _integrate_sf(sev, a, a + l)
+    q = float(sev.ppf(0.01))
+    first = max(q * 1e-3, 1e-300) if math.isfinite(q) and q > a else max(abs(a), 1.0) * 1e-9
+    return integral(sev.sf, a, min(a + min(l, top), sev.upper), first=first)
 
-    ``severity_mean_to_top`` is the layered severity's mean capped at the grid top
-    (E[min(max(X - a, 0), l, top)]): what the grid's severity mean must match,
-    whatever lies beyond the top.
-    """
+
+def _analytic_moments(sev: Severity, f: Frequency, a: float, l: float, to_top: float) -> dict:
+    """Mean and cv of the layered severity min(max(X - a, 0), l) and of the annual total, by quadrature."""
     upper = a + l
-    m1 = _integrate_sf(sev, a, upper)
+    m1 = _integrate_sf(sev, a, upper) if not (math.isfinite(l) and math.isfinite(to_top)) else to_top
     m2 = 2.0 * _integrate_sf(sev, a, upper, weight_from=a)
     agg_mean = f.mean * m1
     agg_var = f.mean * (m2 - m1 * m1) + f.variance * m1 * m1 if math.isfinite(m2) else math.inf
-    if l <= top and math.isfinite(m1):
-        to_top = m1
-    else:
-        q = float(sev.ppf(0.01))
-        first = max(q * 1e-3, 1e-300) if math.isfinite(q) and q > a else max(abs(a), 1.0) * 1e-9
-        to_top = integral(sev.sf, a, min(a + min(l, top), sev.upper), first=first)
     return {
         "severity_mean": m1,
         "severity_cv": math.sqrt(max(m2 - m1 * m1, 0)) / m1 if m1 > 0 and math.isfinite(m2) else math.nan,
         "mean": agg_mean,
         "cv": math.sqrt(max(agg_var, 0.0)) / agg_mean if agg_mean > 0 and math.isfinite(agg_var) else math.nan,
-        "severity_mean_to_top": to_top,
     }
+
+
+def _grid_moments(dist: LossDistribution) -> dict:
+    gm, second, _ = dist.layer_profile(0.0, math.inf)  # mean and E[X^2] in one pass: dist.mean(), dist.std()
+    return {"mean_grid": gm, "cv_grid": math.sqrt(max(second - gm * gm, 0.0)) / gm if gm > 0 else math.nan}
 
 
 class _Once:
@@ -478,6 +598,13 @@ class _Diagnostics(dict):
             dict.update(self, ordered)
             self._pending = None  # only now may readers skip the lock: the dict is complete
 
+    def peek(self, key, default=None):
+        """The entry if it is already there, without computing the pending ones (``default`` otherwise)."""
+        if self._pending is None:
+            return self.get(key, default)
+        with _MERGE_LOCK:
+            return dict.get(self, key, default)
+
     def copy(self):
         if self._pending is None:
             return self._raw()
@@ -513,9 +640,10 @@ del _name
 
 
 @functools.lru_cache(maxsize=256)
-def _count_quantile(freq: Frequency, q: float) -> float:
-    """freq.ppf(q), remembered: scipy's discrete quantile costs about a millisecond per call."""
-    return float(freq.ppf(q))
+def _count_quantile(freq: Frequency, q: float, reach: float = 1.0) -> float:
+    """freq.ppf(q) (of the claims each counted with probability ``reach``), remembered: scipy's
+    discrete quantile costs about a millisecond per call."""
+    return float(freq.ppf(q)) if reach >= 1.0 else freq.thinned_ppf(q, reach)
 
 
 def _integrate_sf(sev: Severity, a: float, b: float, weight_from: float | None = None) -> float:
@@ -544,7 +672,7 @@ def _integrate_sf(sev: Severity, a: float, b: float, weight_from: float | None =
         def fn(x):
             return (x - weight_from) * sev.sf(x)
 
-    pts = [p for p in (sev.ppf(0.5), sev.ppf(0.99)) if a < p < b]
+    pts = [p for p in sev.quadrature_points if a < p < b]
     val, _ = integrate.quad(fn, a, b, limit=200, points=pts or None)
     return float(val)
 

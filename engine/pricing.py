@@ -211,9 +211,10 @@ def _beyond(model, u, oa, ol, a, lim, g) -> np.ndarray:
 
 def _mean_note(diag) -> str:
     """A warning when the grid's severity mean strays from the exact one (up to the grid top)."""
-    if "severity_mean_grid" not in diag:
+    peek = getattr(diag, "peek", diag.get)  # never forces a grid model's lazy diagnostics
+    grid, exact = peek("severity_mean_grid"), peek("severity_mean_to_top")
+    if grid is None:
         return ""
-    grid, exact = diag.get("severity_mean_grid"), diag.get("severity_mean_to_top")
     if exact is None or not (math.isfinite(exact) and exact > 0):
         return ""
     rel = abs(grid / exact - 1.0)

@@ -88,6 +88,11 @@ class Severity:
         """Var X; inf when infinite (checked as for :attr:`mean`)."""
         return _moment(self, 2)
 
+    @functools.cached_property
+    def quadrature_points(self) -> tuple:
+        """Median and 99% quantile: where adaptive quadrature of the survival should split (computed once)."""
+        return float(self.ppf(0.5)), float(self.ppf(0.99))
+
     @property
     def cv(self) -> float:
         m, v = self.mean, self.variance

@@ -134,9 +134,11 @@ def test_concurrent_churn_under_a_small_cap_stays_within_it_and_never_goes_stale
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         serial = [evaluate(builders, c) for c in work]
-    # a cap that holds about two models: everything else is evicted and rebuilt, over and over
+    # a cap below any one frequency-severity model's distributions: caches are dropped and entries
+    # evicted and rebuilt, over and over
+    sizes = [e["bytes"] for e in fresh_cache.entries() if e["reference"].startswith("freqsev")]
+    cap = min(sizes) // 2
     handles.CACHE.clear(reset_counts=True)
-    cap = 3 << 20
     handles.set_memory_cap(cap)
     jobs = list(range(len(work))) * 2
     np.random.default_rng(9).shuffle(jobs)

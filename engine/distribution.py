@@ -143,7 +143,7 @@ class LossDistribution:
         out = self._tail_integrals(x, ((distortion, power),))[0]
         return out if out.ndim else float(out)
 
-    def _tail_integrals(self, x: np.ndarray, specs) -> list:
+    def _tail_integrals(self, x: np.ndarray, specs, *, differences: bool = False) -> list:
         """One pass over the atoms for several integrands: ``[tail_integral(x, g, p) for g, p in specs]``.
 
         The segments are visited from the top down in blocks of up to
@@ -153,6 +153,11 @@ class LossDistribution:
         the running sums at the query points are kept, never a full array, so
         pricing needs O(block) memory beyond the distribution itself; g is
         evaluated once per block for each distinct distortion.
+
+        With ``differences`` only differences between the results are wanted
+        (layer integrals): the running sums then start at the highest atom any
+        query needs rather than at the top, so atoms above every layer cost
+        nothing, and each result is off by one common constant.
         """
         v, sf = self.values, self.sf
         n = v.size
@@ -164,10 +169,11 @@ class LossDistribution:
         # above[k] = integral over [v[k], inf) is needed at jn and at 0; g(S) on segment j at j.
         q_above = np.append(jn.ravel(), 0)
         q_lev = j.ravel()
-        if 2 <= n <= _BLOCK + 1:
-            above_q, lev_q = self._one_block(specs, q_above, np.minimum(q_lev, n - 2))
+        used = n if not differences else int(q_above.max()) + 1  # atoms 0 .. used - 1 take part
+        if 2 <= used <= _BLOCK + 1:
+            above_q, lev_q = self._one_block(specs, q_above, np.minimum(q_lev, used - 2), used)
         else:
-            above_q, lev_q = self._blocks(specs, q_above, q_lev)
+            above_q, lev_q = self._blocks(specs, q_above, q_lev, used)
         results = []
         m = jn.size
         for t, (g, power) in enumerate(specs):
@@ -185,10 +191,11 @@ class LossDistribution:
             results.append(np.where(x >= v[-1], 0.0, out))
         return results
 
-    def _one_block(self, specs, q_above, q_lev):
-        """Running top-down sums and levels at the query points when all segments fit one block."""
-        v, sf = self.values, self.sf
-        hi = v.size - 1
+    def _one_block(self, specs, q_above, q_lev, used):
+        """Running top-down sums and levels at the query points when all segments (of the first ``used``
+        atoms) fit one block."""
+        v, sf = self.values[:used], self.sf[:used]
+        hi = used - 1
         levels = {}
         width = squares = None
         above_q, lev_q = [], []
@@ -213,10 +220,10 @@ class LossDistribution:
             lev_q.append(lev[q_lev])
         return above_q, lev_q
 
-    def _blocks(self, specs, q_above, q_lev):
-        """Running top-down sums and levels at the query points, block by block from the top."""
-        v, sf = self.values, self.sf
-        n = v.size
+    def _blocks(self, specs, q_above, q_lev, used):
+        """Running top-down sums and levels at the query points, block by block from atom ``used - 1``."""
+        v, sf = self.values[:used], self.sf[:used]
+        n = used
         order_a = np.argsort(q_above, kind="stable")
         qa_sorted = q_above[order_a]
         order_l = np.argsort(q_lev, kind="stable")
@@ -285,7 +292,7 @@ class LossDistribution:
         shape = a.shape
         specs = [(None, 0)] + ([(None, 1)] if second_moment else []) + [(g, 0) for g in distortions if g is not None]
         xs = np.concatenate([a.ravel(), top.ravel()])
-        res = self._tail_integrals(xs, specs)
+        res = self._tail_integrals(xs, specs, differences=True)
         m = a.size
 
         def diff(r):

@@ -151,10 +151,14 @@ class FrequencySeverity(LossModel):
     than about min(mean, 90% quantile) / 64 (the median / 64 when the mean is
     infinite) and at most 2**18 points, so a heavy tail that needs more is cut
     and its mass beyond the top is reported (``beyond``) rather than the body
-    blurred; only finite moments are used. A per-occurrence layer's
-    grid makes its limit a whole number of buckets and reaches
-    limit * (99.9999999999% quantile of N). ``method`` is the severity
-    discretisation ("moment" preserves means; "rounding").
+    blurred; only finite moments are used. Such a long automatic grid is
+    computed in two short transforms (see :meth:`body_points`,
+    :meth:`resolution`): the body at that bucket, the rest at a coarser one.
+    A per-occurrence layer's grid makes its limit a whole (even) number of
+    buckets and reaches (far quantile + 1) limits, the quantile
+    (99.9999999999%) being that of the number of claims that reach the
+    attachment. ``method`` is the severity discretisation ("moment" preserves
+    means; "rounding").
     """
 
     frequency: Frequency
@@ -198,6 +202,34 @@ class FrequencySeverity(LossModel):
     # -- grid choice ---------------------------------------------------------
     def grid(self, occ_attachment: float = 0.0, occ_limit: float = math.inf) -> tuple[float, int]:
         """(bucket, grid_length) used for the given per-occurrence terms."""
+        return self._plan(float(occ_attachment), float(occ_limit))[:2]
+
+    def body_points(self, occ_attachment: float = 0.0, occ_limit: float = math.inf) -> int:
+        """Points of the fine part of the grid: ``grid()[1]`` unless the grid is split (see :meth:`annual`).
+
+        An automatic ground-up grid much longer than the aggregate's body needs
+        is split in two: the body, up to where about ``BODY_BEYOND`` of
+        probability lies beyond, at the full resolution ``grid()[0]``, and the
+        whole range up to the grid top at a bucket ``n / body`` times coarser,
+        used only above the body. Both are far shorter transforms than one
+        grid of the full length at the fine bucket.
+        """
+        return self._plan(float(occ_attachment), float(occ_limit))[2]
+
+    def _plan(self, a: float, l: float) -> tuple:
+        """(bucket, grid_length, body points) for the terms, remembered on the model (they cost
+        several scipy quantiles)."""
+        plans = self.__dict__.get("_plans")
+        if plans is None:
+            plans = {}
+            object.__setattr__(self, "_plans", plans)
+        plan = plans.get((a, l))
+        if plan is None:
+            h, n = self._grid(a, l)
+            plan = plans[(a, l)] = (h, n, self._body_points(a, l, h, n))
+        return plan
+
+    def _grid(self, occ_attachment: float, occ_limit: float) -> tuple[float, int]:
         freq, sev = self.frequency, self.severity
         if math.isfinite(occ_limit):
             # the grid holds (far quantile + 1) limits of the claims that reach the attachment: a high
@@ -214,6 +246,7 @@ class FrequencySeverity(LossModel):
                     raise InputError("grid_length", f"{n} points with bucket {h:g} do not reach the limit {occ_limit:g}")
             else:
                 m = max(int(n / (n_top + 1)), 1)
+                m -= m % 2 if m > 2 else 0  # even: the error estimate's grid (twice the bucket) then holds the limit
                 h = occ_limit / m
             _check_grid_fits(h, n, occ_attachment, occ_limit)
             return float(h), int(n)
@@ -264,18 +297,7 @@ class FrequencySeverity(LossModel):
         widest = max(nice_bucket(h_fine), nice_bucket(max(body_top / n, 1e-300)))
         return min(nice_bucket(max(top / n, 1e-300)), widest), int(n)
 
-    def body_points(self, occ_attachment: float = 0.0, occ_limit: float = math.inf) -> int:
-        """Points of the fine part of the grid: ``grid()[1]`` unless the grid is split (see :meth:`annual`).
-
-        An automatic ground-up grid much longer than the aggregate's body needs
-        is split in two: the body, up to where about ``BODY_BEYOND`` of
-        probability lies beyond, at the full resolution ``grid()[0]``, and the
-        whole range up to the grid top at a bucket ``n / body`` times coarser,
-        used only above the body. Both are far shorter transforms than one
-        grid of the full length at the fine bucket.
-        """
-        a, l = float(occ_attachment), float(occ_limit)
-        h, n = self.grid(a, l)
+    def _body_points(self, a: float, l: float, h: float, n: int) -> int:
         if self.bucket is not None or self.grid_length is not None or math.isfinite(l):
             return n
         freq, sev = self.frequency, self.severity
@@ -349,10 +371,12 @@ class FrequencySeverity(LossModel):
             body = self.body_points(a, l)
             (_, h), (body_top, wide) = parts
             points = int(round(n * h / wide))
+            # the body's severity on the body's points only (a claim beyond its top lands beyond it,
+            # wherever it is), transformed on twice as many (see above)
             plan = ((h, 2 * body, 0, body), (wide, points, body_top / wide, points))
         out = []
         for bucket, points, start, stop in plan:
-            probs, tail = discretise(self.severity.sf, bucket, points, a, l, self.method)
+            probs, tail = discretise(self.severity.sf, bucket, stop if start == 0 else points, a, l, self.method)
             probs.flags.writeable = False
             out.append((bucket, points, probs, tail, int(round(start)), stop))
         out = tuple(out)
@@ -361,8 +385,8 @@ class FrequencySeverity(LossModel):
 
     def _aggregate(self, pieces, l) -> LossDistribution:
         """The annual distribution from the pieces' severities (see :meth:`_pieces`)."""
-        results = [aggregate(self.frequency.pgf, probs, tail, self.padding, self.frequency.max_count)
-                   for _, _, probs, tail, _, _ in pieces]
+        results = [aggregate(self.frequency.pgf, *_on_points(probs, tail, points), self.padding, self.frequency.max_count)
+                   for _, points, probs, tail, _, _ in pieces]
         h, n = pieces[0][0], pieces[0][1]
         if len(pieces) == 1:
             agg, beyond = results[0]
@@ -440,13 +464,18 @@ class FrequencySeverity(LossModel):
         pieces = []
         for bucket, points, probs, tail, start, stop in self._pieces(a, l, release=True):
             ext = np.append(probs, tail)
-            last = int(round(l / bucket)) if math.isfinite(l) else points  # the top atom: limit (or tail) stays put
+            end = probs.size
+            last = int(round(l / bucket)) if math.isfinite(l) else end  # the top atom: limit (or tail) stays put
             odd = np.arange(1, last, 2)
             half = 0.5 * ext[odd]
             ext[odd] = 0.0
             ext[odd - 1] += half
             ext[odd + 1] += half
-            pieces.append((bucket, points, ext[:points], float(ext[points]), start, stop))
+            if end % 2 == 0 and points % 2 == 0 and start % 2 == 0 and stop % 2 == 0 and last % 2 == 0:
+                # every atom is now on the grid of twice the bucket: transform it there, at half the length
+                pieces.append((2.0 * bucket, points // 2, ext[:end:2], float(ext[end]), start // 2, stop // 2))
+            else:
+                pieces.append((bucket, points, ext[:end], float(ext[end]), start, stop))
         return self._aggregate(tuple(pieces), l)
 
     def beyond_tail(self, dist: LossDistribution, occ_attachment: float, occ_limit: float, start: float, distortion=None) -> float:
@@ -476,6 +505,17 @@ class FrequencySeverity(LossModel):
         upper = sev.upper - occ_attachment
         return 2.0 * integral(lambda x: sev.sf(occ_attachment + x), start, upper, distortion, scale=b / s_top,
                               first=start * 0.01)
+
+
+def _on_points(probs: np.ndarray, tail: float, points: int) -> tuple:
+    """(probabilities, tail) of a severity on a grid of ``points``: a shorter one extended with zeros,
+    its tail mass as an atom at its end."""
+    if probs.size == points:
+        return probs, tail
+    ext = np.zeros(points)
+    ext[: probs.size] = probs
+    ext[probs.size] = tail
+    return ext, 0.0
 
 
 def _check_grid_fits(h: float, n: int, a: float, l: float):

@@ -156,3 +156,30 @@ def test_occurrence_grids_follow_the_claims_that_reach_the_layer():
     lay = [lw.Layer.occurrence(75 * M, 25 * M, reinstatements=2)]
     got, want = lw.price_layers(model, lay, G), lw.price_layers(ref, lay, G)
     np.testing.assert_allclose(got["premium"], want["premium"], rtol=1e-5)
+
+
+def test_error_estimate_grid_at_half_length_is_the_merged_severity():
+    """The discretisation-error estimate merges odd severity atoms into their neighbours; every atom is
+    then on the grid of twice the bucket, where it is transformed at half the length. Same distribution as
+    transforming the merged severity at full length (computed here with fourier.aggregate directly)."""
+    from layerwise.engine.fourier import aggregate, discretise
+
+    model = lw.FrequencySeverity(lw.poisson(5.0), SEV)
+    a, l = 2 * M, 3 * M
+    h, n = model.grid(a, l)
+    m = int(round(l / h))
+    assert m % 2 == 0  # occurrence grids hold an even number of buckets per limit
+    probs, _ = discretise(SEV.sf, h, n, a, l)
+    merged = probs.copy()
+    odd = np.arange(1, m, 2)
+    merged[odd - 1] += 0.5 * probs[odd]
+    merged[odd + 1] += 0.5 * probs[odd]
+    merged[odd] = 0.0
+    agg, beyond = aggregate(lw.poisson(5.0).pgf, merged, 0.0, model.padding)
+    xs = np.arange(0, n, 2) * h
+    above = np.append(np.cumsum(agg[::-1])[::-1][1:], 0.0) + beyond  # P(X > k h), summed from the top
+    want = above[::2]  # on the coarse lattice (odd atoms are zero)
+    got = model.annual_coarse(a, l).survival(xs)
+    # equal up to the transforms' round-off: about 1e-14 of probability, amplified by the untilt near the top
+    np.testing.assert_allclose(got, want, rtol=1e-9, atol=1e-13)
+    assert got.size > 100 and (want > 1e-6).sum() > 50

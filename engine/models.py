@@ -87,7 +87,14 @@ class LossModel:
 
     occurrence_terms = True  # False for models that hold annual totals only
 
-    def annual(self, occ_attachment: float = 0.0, occ_limit: float = math.inf) -> LossDistribution:
+    def annual(self, occ_attachment: float = 0.0, occ_limit: float = math.inf, *, below: float = math.inf) -> LossDistribution:
+        """The annual distribution for the per-occurrence terms (see the module docstring).
+
+        ``below``: the largest loss any result will be read at (e.g. the
+        highest exhaustion point of the layers to price). A grid model may then
+        compute only the part of its grid below it; the distribution returned
+        is the same there and holds the rest at a top at or above ``below``.
+        """
         a = as_float(occ_attachment, "attachment", low=0.0)
         l = as_float(occ_limit, "limit", low=0.0, low_open=True, allow_inf=True)
         if (a > 0 or math.isfinite(l)) and not self.occurrence_terms:
@@ -96,6 +103,9 @@ class LossModel:
                 f"a {type(self).__name__} holds annual totals, so per-occurrence terms cannot apply; "
                 "use an aggregate layer, or a year-event table or frequency-severity model",
             )
+        return self._annual_cached(a, l, float(below))
+
+    def _annual_cached(self, a, l, below):
         return self._cache.get((a, l), lambda: self._annual(a, l))
 
     def layer_distribution(self, layer: Layer) -> LossDistribution:
@@ -114,7 +124,7 @@ class LossModel:
     # -- numerical guards (grid models override these; see FrequencySeverity) --
     infinite_mean = False  # True when an unlimited layer has an infinite expected loss
 
-    def annual_coarse(self, occ_attachment: float = 0.0, occ_limit: float = math.inf):
+    def annual_coarse(self, occ_attachment: float = 0.0, occ_limit: float = math.inf, *, below: float = math.inf):
         """The annual distribution on a grid twice as coarse, for error estimates (None: not a grid model)."""
         return None
 
@@ -346,89 +356,139 @@ class FrequencySeverity(LossModel):
         super().clear_cache()
         object.__setattr__(self, "_uniform_twin", None)
 
-    def _pieces(self, a, l, *, release: bool = False) -> tuple:
-        """The grids the annual distribution is computed on, with their discretised severities.
+    def _annual_cached(self, a, l, below):
+        if below <= self._body_top(a, l):  # every result is read below the body's top: the body alone
+            return self._cache.get(("body", a, l), lambda: self._body(a, l))
+        return self._cache.get((a, l), lambda: self._annual(a, l))
 
-        Each piece is (bucket, points, probabilities, tail, first used index,
-        end of used indices): one piece for an ordinary grid; for a split grid
-        the body (bucket h on twice its used length, so that the transform's
-        round-off, amplified towards the end of a tilted grid, stays small where
-        it is used) and the whole range at the coarse bucket, used from the body's top.
-        The last one computed is remembered (read-only), so that the coarse
-        distribution price_layers asks for right after the fine one does not
-        discretise the severity again; ``release`` drops it after use.
+    def _body_top(self, a, l) -> float:
+        """Top of the body of a split grid (inf when the grid is not split)."""
+        parts = self.resolution(a, l)
+        return parts[1][0] if len(parts) > 1 else math.inf
+
+    def _piece_specs(self, a, l) -> tuple:
+        """(bucket, transform points, severity points, first used index, end of used indices) per grid.
+
+        One for an ordinary grid; for a split grid the body (the severity on the
+        body's points, since a claim beyond its top lands beyond it wherever it
+        is, transformed on twice as many, so that the round-off the untilt
+        amplifies towards the end of the grid stays small where it is used) and
+        the whole range at the coarse bucket, used from the body's top.
         """
-        memo = self.__dict__.get("_severity_memo")
-        if memo is not None and memo[0] == (a, l):
-            if release:
-                object.__setattr__(self, "_severity_memo", None)
-            return memo[1]
         h, n = self.grid(a, l)
         parts = self.resolution(a, l)
         if len(parts) == 1:
-            plan = ((h, n, 0, n),)
-        else:
-            body = self.body_points(a, l)
-            (_, h), (body_top, wide) = parts
-            points = int(round(n * h / wide))
-            # the body's severity on the body's points only (a claim beyond its top lands beyond it,
-            # wherever it is), transformed on twice as many (see above)
-            plan = ((h, 2 * body, 0, body), (wide, points, body_top / wide, points))
-        out = []
-        for bucket, points, start, stop in plan:
-            probs, tail = discretise(self.severity.sf, bucket, stop if start == 0 else points, a, l, self.method)
-            probs.flags.writeable = False
-            out.append((bucket, points, probs, tail, int(round(start)), stop))
-        out = tuple(out)
-        object.__setattr__(self, "_severity_memo", None if release else ((a, l), out))
-        return out
+            return ((h, n, n, 0, n),)
+        body = self.body_points(a, l)
+        (_, h), (body_top, wide) = parts
+        points = int(round(n * h / wide))
+        return ((h, 2 * body, body, 0, body), (wide, points, points, int(round(body_top / wide)), points))
 
-    def _aggregate(self, pieces, l) -> LossDistribution:
-        """The annual distribution from the pieces' severities (see :meth:`_pieces`)."""
-        results = [aggregate(self.frequency.pgf, *_on_points(probs, tail, points), self.padding, self.frequency.max_count)
-                   for _, points, probs, tail, _, _ in pieces]
-        h, n = pieces[0][0], pieces[0][1]
-        if len(pieces) == 1:
-            agg, beyond = results[0]
-            return _grid_distribution(np.arange(n, dtype=float) * h, agg, beyond, n * h)
-        (_, _, _, _, _, stop), (wide, points, _, _, start, _) = pieces
-        body = results[0][0][:stop]
-        top_mass = max(1.0 - float(body.sum()), 0.0)  # the body's probability at or above its top
-        tail_agg, tail_beyond = results[1]
-        # Above the body's top the survival steps are the coarse grid's own, P(X > k H), each
-        # standing for the mean of S over [k H, (k + 1) H]; the atom at the top takes what the
-        # body leaves above it less the coarse survival there. (Cutting the coarse masses at the
-        # top instead gives an error of the order of H: its atom there stands for mass on both sides.)
-        upper = tail_agg[start + 1 :]
-        above = float(upper.sum()) + tail_beyond  # coarse P(X > top of the body)
-        scale = 1.0
-        if above > top_mass:  # the two grids disagree by more than the step: no negative atom, shrink the tail
-            scale = top_mass / above
-        values = np.arange(stop + points - start, dtype=float)
-        values[:stop] *= h
-        values[stop:] = np.arange(start, points, dtype=float) * wide
-        probs = np.concatenate([body, [max(top_mass - above * scale, 0.0)], upper * scale])
-        return _grid_distribution(values, probs, tail_beyond * scale, points * wide)
+    def _piece(self, a, l, i: int, *, release: bool = False) -> tuple:
+        """Grid ``i`` of :meth:`_piece_specs` with its discretised severity:
+        (bucket, transform points, probabilities, tail, first used index, end of used indices).
+
+        The pieces of the last terms are remembered (read-only), so that the
+        coarse distribution price_layers asks for right after the fine one
+        does not discretise the severity again; ``release`` drops one after use.
+        """
+        memo = self.__dict__.get("_severity_memo")
+        if memo is None or memo[0] != (a, l):
+            memo = ((a, l), {})
+            object.__setattr__(self, "_severity_memo", memo)
+        got = memo[1].pop(i, None) if release else memo[1].get(i)
+        if got is not None:
+            return got
+        bucket, points, sev_points, start, stop = self._piece_specs(a, l)[i]
+        probs, tail = discretise(self.severity.sf, bucket, sev_points, a, l, self.method)
+        probs.flags.writeable = False
+        got = (bucket, points, probs, tail, start, stop)
+        if not release:
+            memo[1][i] = got
+        return got
+
+    def _transform(self, piece) -> tuple:
+        """(aggregate probabilities on the piece's used points, probability at or beyond their end)."""
+        _, points, probs, tail, _, stop = piece
+        agg, beyond = aggregate(self.frequency.pgf, *_on_points(probs, tail, points), self.padding, self.frequency.max_count)
+        if stop < points:
+            agg = agg[:stop]
+            beyond = max(1.0 - float(agg.sum()), 0.0)
+        return agg, beyond
+
+    def _body(self, a, l) -> LossDistribution:
+        """The distribution below the body's top of a split grid, the rest held at that top."""
+        piece = self._piece(a, l, 0)
+        return self._with_diagnostics(self._on_grid(piece, *self._transform(piece)), (piece,), a, l)
+
+    @staticmethod
+    def _on_grid(piece, agg, beyond) -> LossDistribution:
+        bucket, stop = piece[0], piece[5]
+        return _grid_distribution(np.arange(stop, dtype=float) * bucket, agg, beyond, stop * bucket)
+
+    @staticmethod
+    def _join(body: LossDistribution, piece, agg, beyond) -> LossDistribution:
+        """The body's distribution below its top, continued above it by the coarse grid ``piece``.
+
+        Above the body's top the survival steps are the coarse grid's own,
+        P(X > k H), each standing for the mean of S over [k H, (k + 1) H]; the
+        atom at the top takes what the body leaves above it less the coarse
+        survival there. (Cutting the coarse masses at the top instead gives an
+        error of the order of H: its atom there stands for mass on both sides.)
+        Below the top the atoms and survival are the body's own, bit for bit,
+        so a layer below the top prices the same on either.
+        """
+        wide, points, start = piece[0], piece[1], piece[4]
+        top, top_mass = body.top, body.beyond  # the body's probability at or above its top
+        if not top_mass > 0:
+            return body
+        upper = agg[start + 1 :]
+        above = float(upper.sum()) + beyond  # coarse P(X > the body's top)
+        scale = 1.0 if above <= top_mass else top_mass / above  # grids disagreeing by more than a step: shrink the tail
+        values = np.concatenate([[top], np.arange(start + 1, points, dtype=float) * wide, [points * wide]])
+        probs = np.concatenate([[max(top_mass - above * scale, 0.0)], upper * scale, [beyond * scale]])
+        keep = probs > 0
+        keep[0] = True  # the body's top stays an atom: the body's survival steps end there
+        values, probs = values[keep], probs[keep]
+        sf = np.zeros(probs.size)
+        sf[:-1] = np.cumsum(probs[:0:-1])[::-1]  # P(X > value), summed from the top down
+        below = body.values.size - 1  # the body's atoms below its top
+        out_values = np.concatenate([body.values[:below], values])
+        out_sf = np.concatenate([body.sf[:below], sf])
+        if beyond * scale > 0:
+            return LossDistribution(out_values, out_sf, beyond * scale, points * wide)
+        return LossDistribution(out_values, out_sf)
 
     def _annual(self, a, l):
-        pieces = self._pieces(a, l)
-        sev = self.severity
-        dist = self._aggregate(pieces, l)
+        specs = self._piece_specs(a, l)
+        if len(specs) == 1:
+            piece = self._piece(a, l, 0)
+            return self._with_diagnostics(self._on_grid(piece, *self._transform(piece)), (piece,), a, l)
+        body = self._cache.get(("body", a, l), lambda: self._body(a, l))
+        piece = self._piece(a, l, 1)
+        dist = self._join(body, piece, *self._transform(piece))
+        return self._with_diagnostics(dist, (self._piece(a, l, 0), piece), a, l)
+
+    def _with_diagnostics(self, dist: LossDistribution, pieces, a, l) -> LossDistribution:
         h, n = self.grid(a, l)
-        diag = {"bucket": h, "grid_length": n, "method": self.method, "grid_top": n * h, "beyond": dist.beyond}
-        if len(pieces) > 1:
-            diag["body_points"], diag["body_top"], diag["tail_bucket"] = pieces[0][5], pieces[0][5] * h, pieces[1][0]
+        top = pieces[-1][5] * pieces[-1][0]  # the top of the grid that reaches furthest
+        sev = self.severity
+        diag = {"bucket": h, "grid_length": n, "method": self.method, "grid_top": top, "beyond": dist.beyond}
+        if self._body_top(a, l) < math.inf:
+            diag["body_points"], diag["body_top"] = self.body_points(a, l), self._body_top(a, l)
+            if len(pieces) > 1:
+                diag["tail_bucket"] = pieces[1][0]
         # the severity's grid moments from the piece that reaches the top
-        bucket, points, probs, tail = pieces[-1][:4]
-        k = np.arange(points, dtype=float) * bucket
+        bucket, _, probs, tail = pieces[-1][:4]
+        k = np.arange(probs.size, dtype=float) * bucket
         # einsum, not @: a BLAS dot of this size wakes OpenBLAS's threads, which on a busy
         # 2-core machine costs 10-20 ms per call instead of 20 microseconds
-        d_m1 = float(np.einsum("i,i->", probs, k) + tail * points * bucket)
+        d_m1 = float(np.einsum("i,i->", probs, k) + tail * probs.size * bucket)
         d_m2 = float(np.einsum("i,i->", probs, k * k))
         diag["severity_mean_grid"] = d_m1
         diag["severity_cv_grid"] = math.sqrt(max(d_m2 - d_m1 * d_m1, 0)) / d_m1 if d_m1 > 0 else math.nan
         # the exact layered severity mean the grid's must match (read by every price), by one quadrature
-        diag["severity_mean_to_top"] = to_top = _mean_to_top(sev, a, l, n * h)
+        diag["severity_mean_to_top"] = to_top = _mean_to_top(sev, a, l, top)
         # the other analytic moments need more adaptive quadrature, and the grid moments a pass over
         # the distribution: together they cost more than the grid, so they are computed on first
         # read of the diagnostics (price_layers only peeks at the entries above)
@@ -446,7 +506,7 @@ class FrequencySeverity(LossModel):
         """True when the severity's mean is infinite: an unlimited layer then has an infinite expected loss."""
         return not self.severity.finite_mean
 
-    def annual_coarse(self, occ_attachment: float = 0.0, occ_limit: float = math.inf) -> LossDistribution:
+    def annual_coarse(self, occ_attachment: float = 0.0, occ_limit: float = math.inf, *, below: float = math.inf) -> LossDistribution:
         """The annual distribution on the same grid with the severity discretised at twice the bucket.
 
         Each severity probability at an odd grid point is split equally between
@@ -455,28 +515,26 @@ class FrequencySeverity(LossModel):
         difference of a layer's price on this and on the fine distribution is
         the discretisation error estimate of :func:`~layerwise.engine.pricing.price_layers`:
         for a method of order p the fine grid's error is about that
-        difference / (2**p - 1), so the difference overstates it.
+        difference / (2**p - 1), so the difference overstates it. ``below`` as
+        for :meth:`annual`.
         """
         a, l = float(occ_attachment), float(occ_limit)
+        if float(below) <= self._body_top(a, l):
+            return self._cache.get(("coarse body", a, l), lambda: self._coarse_body(a, l))
         return self._cache.get(("coarse", a, l), lambda: self._coarse(a, l))
 
+    def _coarse_body(self, a, l):
+        piece = _merged(self._piece(a, l, 0, release=True), l)
+        return self._on_grid(piece, *self._transform(piece))
+
     def _coarse(self, a, l):
-        pieces = []
-        for bucket, points, probs, tail, start, stop in self._pieces(a, l, release=True):
-            ext = np.append(probs, tail)
-            end = probs.size
-            last = int(round(l / bucket)) if math.isfinite(l) else end  # the top atom: limit (or tail) stays put
-            odd = np.arange(1, last, 2)
-            half = 0.5 * ext[odd]
-            ext[odd] = 0.0
-            ext[odd - 1] += half
-            ext[odd + 1] += half
-            if end % 2 == 0 and points % 2 == 0 and start % 2 == 0 and stop % 2 == 0 and last % 2 == 0:
-                # every atom is now on the grid of twice the bucket: transform it there, at half the length
-                pieces.append((2.0 * bucket, points // 2, ext[:end:2], float(ext[end]), start // 2, stop // 2))
-            else:
-                pieces.append((bucket, points, ext[:end], float(ext[end]), start, stop))
-        return self._aggregate(tuple(pieces), l)
+        specs = self._piece_specs(a, l)
+        if len(specs) == 1:
+            piece = _merged(self._piece(a, l, 0, release=True), l)
+            return self._on_grid(piece, *self._transform(piece))
+        body = self._cache.get(("coarse body", a, l), lambda: self._coarse_body(a, l))
+        piece = _merged(self._piece(a, l, 1, release=True), l)
+        return self._join(body, piece, *self._transform(piece))
 
     def beyond_tail(self, dist: LossDistribution, occ_attachment: float, occ_limit: float, start: float, distortion=None) -> float:
         """Estimate of integral_start^inf g(S(x)) dx for the part of an unlimited layer above ``dist.top``.
@@ -505,6 +563,27 @@ class FrequencySeverity(LossModel):
         upper = sev.upper - occ_attachment
         return 2.0 * integral(lambda x: sev.sf(occ_attachment + x), start, upper, distortion, scale=b / s_top,
                               first=start * 0.01)
+
+
+def _merged(piece, l: float) -> tuple:
+    """The piece with each severity probability at an odd grid point split between its neighbours.
+
+    The top atom (the limit, or the tail) stays where it is. When every atom is
+    then on the grid of twice the bucket, the piece is returned on that grid, at
+    half the length (same distribution, half the transform).
+    """
+    bucket, points, probs, tail, start, stop = piece
+    ext = np.append(probs, tail)
+    end = probs.size
+    last = int(round(l / bucket)) if math.isfinite(l) else end
+    odd = np.arange(1, last, 2)
+    half = 0.5 * ext[odd]
+    ext[odd] = 0.0
+    ext[odd - 1] += half
+    ext[odd + 1] += half
+    if end % 2 == 0 and points % 2 == 0 and start % 2 == 0 and stop % 2 == 0 and last % 2 == 0:
+        return (2.0 * bucket, points // 2, ext[:end:2], float(ext[end]), start // 2, stop // 2)
+    return (bucket, points, ext[:end], float(ext[end]), start, stop)
 
 
 def _on_points(probs: np.ndarray, tail: float, points: int) -> tuple:

@@ -140,9 +140,10 @@ def price_layers(model: LossModel, layers, distortion) -> pd.DataFrame:
     prem = np.empty((d, k)); err = np.empty((d, k)); disc = np.zeros((d, k))
     mean_note = [""] * k
     for (oa, ol), idx in _groups(lays).items():
-        u = model.annual(oa, ol)
         a = np.array([lays[i].agg_attachment for i in idx])
         lim = np.array([lays[i].agg_limit for i in idx])
+        below = float(np.max(a + lim))  # nothing above the highest exhaustion point is read
+        u = model.annual(oa, ol, below=below)
         share = np.array([lays[i].share for i in idx])
         e, second, prices = u.layer_profile(a, lim, gs)
         el[idx] = share * e
@@ -154,7 +155,7 @@ def price_layers(model: LossModel, layers, distortion) -> pd.DataFrame:
         for t, g in enumerate(gs):
             prem[t, idx] = share * prices[t]
             err[t, idx] = share * np.maximum(_beyond(model, u, oa, ol, a, lim, g), plain)
-        coarse = model.annual_coarse(oa, ol)
+        coarse = model.annual_coarse(oa, ol, below=below)
         if coarse is not None:
             ec, _, pc = coarse.layer_profile(a, lim, gs, second_moment=False)
             with np.errstate(invalid="ignore"):

@@ -183,3 +183,24 @@ def test_error_estimate_grid_at_half_length_is_the_merged_severity():
     # equal up to the transforms' round-off: about 1e-14 of probability, amplified by the untilt near the top
     np.testing.assert_allclose(got, want, rtol=1e-9, atol=1e-13)
     assert got.size > 100 and (want > 1e-6).sum() > 50
+
+
+def test_a_tower_below_the_body_reads_the_body_alone():
+    """price_layers asks only for what its layers read: below the body's top the coarse grid is not computed,
+    and the prices equal those read from the whole distribution (the same atoms and survival below the top)."""
+    model = lw.FrequencySeverity(FREQ, SEV)
+    body_top = model.resolution()[1][0]
+    layers = lw.stack([5 * M, 10 * M, 20 * M], start=5 * M, basis="aggregate")
+    low = lw.price_layers(model, layers, G)
+    keys = set(model._cache._items)
+    assert ("body", 0.0, math.inf) in keys and (0.0, math.inf) not in keys
+    whole = model.annual()
+    body = model.annual(below=body_top)
+    n = body.size - 1  # the body's atoms below its top
+    np.testing.assert_array_equal(whole.values[:n], body.values[:n])
+    np.testing.assert_array_equal(whole.sf[:n], body.sf[:n])
+    assert body.top == body_top and body.beyond == pytest.approx(whole.survival_left(body_top), rel=1e-12)
+    with_unlimited = lw.price_layers(model, list(layers) + [lw.Layer.aggregate(40 * M, math.inf)], G)
+    with_unlimited = with_unlimited[with_unlimited.layer != with_unlimited.layer.iloc[3]]
+    for col in ("expected_loss", "premium", "std"):
+        np.testing.assert_allclose(low[col].to_numpy(), with_unlimited[col].to_numpy(), rtol=1e-12)

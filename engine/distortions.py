@@ -37,7 +37,8 @@ __all__ = [
 
 def _unit(s) -> np.ndarray:
     """Survival probabilities as float64, with float round-off clipped into [0, 1]."""
-    return np.clip(np.asarray(s, dtype=np.float64), 0.0, 1.0)
+    s = np.asarray(s, dtype=np.float64)
+    return np.minimum(np.maximum(s, 0.0), 1.0)  # as np.clip (NaN stays NaN), without its Python overhead
 
 
 class Distortion:

@@ -174,51 +174,41 @@ class LossDistribution:
             above_q, lev_q = self._one_block(specs, q_above, np.minimum(q_lev, used - 2), used)
         else:
             above_q, lev_q = self._blocks(specs, q_above, q_lev, used)
-        results = []
+        # all integrands at once: rows are specs, columns the query points
         m = jn.size
-        for t, (g, power) in enumerate(specs):
-            above_jn = above_q[t][:m].reshape(jn.shape)
-            above0 = above_q[t][m]
-            lev_j = lev_q[t].reshape(j.shape)
-            if power == 0:
-                part = lev_j * (v[jn] - xc)
-                head = (v[0] - xc) + above0  # g(1) = 1 below the first atom
-            else:
-                part = lev_j * 0.5 * (v[jn] ** 2 - xc**2)
-                head = 0.5 * (v[0] ** 2 - xc**2) + above0
-            part = np.where(jn > j, part, 0.0)  # also discards g(S) looked up for j = n - 1 (a zero-width part)
-            out = np.where(inside, above_jn * (jn > j) + part, head)
-            results.append(np.where(x >= v[-1], 0.0, out))
-        return results
+        above_q, lev_q = np.asarray(above_q), np.asarray(lev_q)
+        xf, jf, jnf = xc.ravel(), j.ravel(), jn.ravel()
+        vjn = v[jnf]
+        powers = np.array([power for _, power in specs])
+        widths = np.where(powers[:, None] == 0, vjn - xf, 0.5 * (vjn**2 - xf**2))  # 0.5 x exact: same bits as before
+        heads = np.where(powers[:, None] == 0, v[0] - xf, 0.5 * (v[0] ** 2 - xf**2)) + above_q[:, m : m + 1]  # g(1) = 1 below the first atom
+        step = jnf > jf  # False also discards g(S) looked up for j = n - 1 (a zero-width part)
+        part = np.where(step, lev_q * widths, 0.0)
+        out = np.where(inside.ravel(), above_q[:, :m] * step + part, heads)
+        out = np.where(x.ravel() >= v[-1], 0.0, out)
+        return [row.reshape(x.shape) for row in out]
 
     def _one_block(self, specs, q_above, q_lev, used):
         """Running top-down sums and levels at the query points when all segments (of the first ``used``
-        atoms) fit one block."""
+        atoms) fit one block: every integrand in one 2-D pass."""
         v, sf = self.values[:used], self.sf[:used]
         hi = used - 1
-        levels = {}
-        width = squares = None
-        above_q, lev_q = [], []
-        for g, power in specs:
-            key = id(g)
-            if key not in levels:
-                levels[key] = sf[:hi] if g is None else np.broadcast_to(np.asarray(g(sf[:hi]), dtype=float), (hi,))
-            lev = levels[key]
-            if power == 0:
-                if width is None:
-                    width = v[1:] - v[:-1]
-                seg = lev * width
-            else:
-                if squares is None:
-                    squares = v[1:] ** 2 - v[:-1] ** 2
-                seg = lev * 0.5 * squares
-            run = np.empty(hi + 1)
-            run[0] = 0.0
-            run[1:] = seg[::-1]
-            np.cumsum(run, out=run)  # run[hi - s] = above[s]; run[0] = above[n - 1] = 0
-            above_q.append(run[hi - q_above])
-            lev_q.append(lev[q_lev])
-        return above_q, lev_q
+        rows: dict = {}
+        for g, _ in specs:
+            rows.setdefault(id(g), g)
+        levels = np.empty((len(rows), hi))
+        for r, g in enumerate(rows.values()):
+            levels[r] = sf[:hi] if g is None else np.asarray(g(sf[:hi]), dtype=float)  # a constant g broadcasts
+        which = [list(rows).index(id(g)) for g, _ in specs]
+        width = v[1:] - v[:-1]
+        seg = np.empty((len(specs), hi + 1))
+        seg[:, 0] = 0.0
+        for t, (g, power) in enumerate(specs):
+            # reversed, so that one cumulative sum along each row runs from the top down
+            np.multiply(levels[which[t], ::-1], width[::-1] if power == 0 else 0.5 * (v[1:] ** 2 - v[:-1] ** 2)[::-1],
+                        out=seg[t, 1:])
+        np.cumsum(seg, axis=1, out=seg)  # seg[t, hi - s] = above[s]; seg[t, 0] = above[n - 1] = 0
+        return seg[:, hi - q_above], levels[which][:, q_lev]
 
     def _blocks(self, specs, q_above, q_lev, used):
         """Running top-down sums and levels at the query points, block by block from atom ``used - 1``."""

@@ -24,7 +24,7 @@ from dataclasses import dataclass, field
 import numpy as np
 from scipy import integrate
 
-from .distribution import LossDistribution
+from .distribution import LossDistribution, _sf_from_probs
 from .errors import InputError, as_array, as_float
 from .fourier import MAX_GRID_LENGTH, METHODS, aggregate, discretise, nice_bucket
 from .frequency import FixedCount, Frequency
@@ -608,9 +608,13 @@ def _grid_distribution(grid, agg, beyond, top) -> LossDistribution:
     nz = agg > 0
     if not nz.any():  # every year lands beyond the grid (e.g. far more claims than the grid can hold)
         return LossDistribution.from_atoms([0.0], [0.0], beyond=1.0, top=top, sorted_unique=True)
+    # what from_atoms(..., sorted_unique=True) builds, without re-validating the transform's own output
+    # (ascending grid points, probabilities >= 0 summing with beyond to 1)
+    values, probs = grid[nz], agg[nz]
     if beyond > 0:
-        return LossDistribution.from_atoms(grid[nz], agg[nz], beyond=beyond, top=top, sorted_unique=True)
-    return LossDistribution.from_atoms(grid[nz], agg[nz], sorted_unique=True)
+        values, probs = np.append(values, top), np.append(probs, beyond)
+        return LossDistribution(values, _sf_from_probs(probs), float(beyond), float(top))
+    return LossDistribution(values, _sf_from_probs(probs))
 
 
 def _count_tail_sum(freq: Frequency, k0: int, distortion) -> float:

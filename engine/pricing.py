@@ -161,7 +161,8 @@ def price_layers(model: LossModel, layers, distortion) -> pd.DataFrame:
             with np.errstate(invalid="ignore"):
                 de = np.abs(np.asarray(e) - ec)
                 for t in range(d):
-                    disc[t, idx] = share * np.nan_to_num(np.maximum(np.abs(np.asarray(prices[t]) - pc[t]), de), nan=np.inf)
+                    change = np.maximum(np.abs(np.asarray(prices[t]) - pc[t]), de)
+                    disc[t, idx] = share * np.where(np.isnan(change), np.inf, change)  # unknown: no tolerance met
         note = _mean_note(u.diagnostics)
         for i in idx:
             mean_note[i] = note

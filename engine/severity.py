@@ -233,6 +233,8 @@ class _LognormalSF:
         self.sigma, self.scale = sigma, scale
 
     def __call__(self, x):
+        if type(x) is float and x > 0.0:  # quadrature's scalar calls: the same ufuncs, without the array set-up
+            return special.ndtr(-(np.log(x / self.scale) / self.sigma))
         y = np.asarray(x, dtype=np.float64) / self.scale
         with np.errstate(divide="ignore", invalid="ignore"):
             out = special.ndtr(-(np.log(y) / self.sigma))

@@ -337,6 +337,14 @@ def _collateralised(row, column):
         )
         err.code = "#NUM!"  # the inputs are valid; the result is not a finite number
         raise err
+    if column in ("return_on_capital", "leverage") and not row["capital"] > 0:
+        err = InputError(
+            "distortion",
+            f"no return can be stated: the premium {row['premium']:.6g} takes the whole collateral "
+            f"{row['collateral']:.6g}, so the layer needs no capital (a distortion this strong prices the layer at its limit)",
+        )
+        err.code = "#NUM!"
+        raise err
     return row[column]
 
 

@@ -72,10 +72,12 @@ class Severity:
         return self.dist.cdf(x)
 
     def ppf(self, q):
-        return self.dist.ppf(q)
+        fast = getattr(self.fast_sf, "ppf", None)
+        return self.dist.ppf(q) if fast is None else fast(q)
 
     def isf(self, q):
-        return self.dist.isf(q)
+        fast = getattr(self.fast_sf, "isf", None)
+        return self.dist.isf(q) if fast is None else fast(q)
 
     @functools.cached_property
     def mean(self) -> float:
@@ -242,6 +244,20 @@ class _LognormalSF:
             out[y < 0] = 1.0
             return out
         return np.float64(1.0) if y < 0 else out[()]
+
+    # quantiles as scipy computes them (scale * exp(sigma * Phi^-1)), without its argument checks;
+    # isf through Phi^-1(q) itself, so far-tail levels keep their precision
+    def ppf(self, q):
+        q = np.asarray(q, dtype=np.float64)
+        with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+            out = self.scale * np.exp(self.sigma * special.ndtri(q))
+        return out if out.ndim else out[()]
+
+    def isf(self, q):
+        q = np.asarray(q, dtype=np.float64)
+        with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+            out = self.scale * np.exp(-self.sigma * special.ndtri(q))
+        return out if out.ndim else out[()]
 
     def __reduce__(self):
         return (_LognormalSF, (self.sigma, self.scale))

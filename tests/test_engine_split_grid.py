@@ -204,3 +204,17 @@ def test_a_tower_below_the_body_reads_the_body_alone():
     with_unlimited = with_unlimited[with_unlimited.layer != with_unlimited.layer.iloc[3]]
     for col in ("expected_loss", "premium", "std"):
         np.testing.assert_allclose(low[col].to_numpy(), with_unlimited[col].to_numpy(), rtol=1e-12)
+
+
+# ----------------------------------------------------------------------------- fast lognormal paths
+def test_lognormal_fast_paths_equal_scipy():
+    """The lognormal's own survival and quantiles (scalar and array) are scipy's numbers bit for bit."""
+    sev = lw.lognormal(mean=M, cv=2.5)
+    ref = sev.dist  # scipy's frozen lognorm with the same parameters
+    xs = np.concatenate([[0.0, -1.0], np.geomspace(1e-3, 1e12, 400)])
+    np.testing.assert_array_equal(sev.sf(xs), ref.sf(xs))
+    assert all(sev.sf(float(x)) == ref.sf(x) for x in xs[::7])
+    q = np.array([0.0, 1e-300, 1e-12, 1e-4, 0.01, 0.5, 0.9, 0.999999, 1.0])
+    np.testing.assert_array_equal(sev.ppf(q), ref.ppf(q))
+    np.testing.assert_array_equal(sev.isf(q), ref.isf(q))
+    assert np.isnan(sev.ppf(1.5)) and np.isnan(sev.isf(-0.1))

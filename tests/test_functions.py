@@ -582,3 +582,15 @@ def test_functions_work_in_headless_recalculation(tmp_path, fs, annual_losses):
     frame = lw.price_layers(model, lw.stack([1e6, 2e6]), lw.ProportionalHazard(0.8))
     assert [v["E1"], v["F1"]] == ["layer", "premium"]
     assert v["E2"] == frame["layer"][0] and v["F3"] == pytest.approx(frame["premium"][1], rel=1e-12)
+
+
+def test_return_on_capital_of_a_layer_priced_at_its_limit_says_why():
+    """TVaR at p prices a layer at its full limit when the layer is hit more often than 1 - p (the top p
+    quantile lies above its exhaustion point): no capital, so no return can be stated.
+    """
+    # common practice, no source: a fully collateralised layer needs limit - premium of capital
+    ref = F["LW_MODEL_SCENARIOS"]([[0.0], [1e7]], [[0.5], [0.5]])  # half the years exhaust the layer
+    assert F["LW_PREMIUM"](ref, 1e6, 2e6, "tvar 0.9", 1, "aggregate") == pytest.approx(2e6, rel=1e-12)
+    out = F["LW_RETURN_ON_CAPITAL"](ref, 1e6, 2e6, "tvar 0.9", 1, "aggregate")
+    assert isinstance(out, str) and out.startswith("#NUM! LW_RETURN_ON_CAPITAL(distortion): no return can be stated")
+    assert F["LW_CAPITAL"](ref, 1e6, 2e6, "tvar 0.9", 1, "aggregate") == 0.0

@@ -371,9 +371,10 @@ class FrequencySeverity(LossModel):
 
         One for an ordinary grid; for a split grid the body (the severity on the
         body's points, since a claim beyond its top lands beyond it wherever it
-        is, transformed on twice as many, so that the round-off the untilt
-        amplifies towards the end of the grid stays small where it is used) and
-        the whole range at the coarse bucket, used from the body's top.
+        is, transformed on 1.5 times as many, so that the round-off the untilt
+        amplifies towards the end of the grid, e^(TILT / 3) at the body's top,
+        stays about 1e-9 of the survival there) and the whole range at the
+        coarse bucket, used from the body's top.
         """
         h, n = self.grid(a, l)
         parts = self.resolution(a, l)
@@ -382,7 +383,7 @@ class FrequencySeverity(LossModel):
         body = self.body_points(a, l)
         (_, h), (body_top, wide) = parts
         points = int(round(n * h / wide))
-        return ((h, 2 * body, body, 0, body), (wide, points, points, int(round(body_top / wide)), points))
+        return ((h, 3 * body // 2, body, 0, body), (wide, points, points, int(round(body_top / wide)), points))
 
     def _piece(self, a, l, i: int, *, release: bool = False) -> tuple:
         """Grid ``i`` of :meth:`_piece_specs` with its discretised severity:

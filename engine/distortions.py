@@ -65,6 +65,11 @@ class Distortion:
     def _g(self, s: np.ndarray) -> np.ndarray:  # pragma: no cover - abstract
         raise NotImplementedError
 
+    def inside(self, s: np.ndarray) -> np.ndarray:
+        """g on float64 survival probabilities all strictly inside (0, 1): what ``self(s)`` returns there
+        (nothing to clip or pin), without the checks; for the integral passes."""
+        return np.asarray(self._g(s), dtype=np.float64)
+
     @property
     def value(self) -> float:
         """The family parameter's value (one-parameter families only)."""

@@ -197,8 +197,13 @@ class LossDistribution:
         for g, _ in specs:
             rows.setdefault(id(g), g)
         levels = np.empty((len(rows), hi))
+        interior = hi > 0 and sf[0] < 1.0 and sf[hi - 1] > 0.0  # sf is non-increasing: all of sf[:hi] in (0, 1)
         for r, g in enumerate(rows.values()):
-            levels[r] = sf[:hi] if g is None else np.asarray(g(sf[:hi]), dtype=float)  # a constant g broadcasts
+            if g is None:
+                levels[r] = sf[:hi]
+            else:  # a constant g broadcasts; plain functions (no ``inside``) are called as they are
+                lean = getattr(g, "inside", None) if interior else None
+                levels[r] = lean(sf[:hi]) if lean is not None else np.asarray(g(sf[:hi]), dtype=float)
         which = [list(rows).index(id(g)) for g, _ in specs]
         width = v[1:] - v[:-1]
         seg = np.empty((len(specs), hi + 1))

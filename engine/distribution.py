@@ -179,14 +179,24 @@ class LossDistribution:
         above_q, lev_q = np.asarray(above_q), np.asarray(lev_q)
         xf, jf, jnf = xc.ravel(), j.ravel(), jn.ravel()
         vjn = v[jnf]
-        powers = np.array([power for _, power in specs])
-        widths = np.where(powers[:, None] == 0, vjn - xf, 0.5 * (vjn**2 - xf**2))  # 0.5 x exact: same bits as before
-        heads = np.where(powers[:, None] == 0, v[0] - xf, 0.5 * (v[0] ** 2 - xf**2)) + above_q[:, m : m + 1]  # g(1) = 1 below the first atom
+        squared = [t for t, (_, power) in enumerate(specs) if power == 1]
+        widths = np.empty((len(specs), m))
+        heads = np.empty((len(specs), m))
+        widths[:] = vjn - xf
+        heads[:] = v[0] - xf  # g(1) = 1 below the first atom
+        if squared:
+            widths[squared] = 0.5 * (vjn**2 - xf**2)  # 0.5 x exact: same bits as before
+            heads[squared] = 0.5 * (v[0] ** 2 - xf**2)
+        heads += above_q[:, m : m + 1]
         step = jnf > jf  # False also discards g(S) looked up for j = n - 1 (a zero-width part)
-        part = np.where(step, lev_q * widths, 0.0)
-        out = np.where(inside.ravel(), above_q[:, :m] * step + part, heads)
-        out = np.where(x.ravel() >= v[-1], 0.0, out)
-        return [row.reshape(x.shape) for row in out]
+        widths *= lev_q
+        out = above_q[:, :m] * step
+        out += np.where(step, widths, 0.0)
+        keep_head = ~inside.ravel()
+        if keep_head.any():
+            out[:, keep_head] = heads[:, keep_head]
+        out[:, x.ravel() >= v[-1]] = 0.0
+        return list(out.reshape((len(specs),) + x.shape))
 
     def _one_block(self, specs, q_above, q_lev, used):
         """Running top-down sums and levels at the query points when all segments (of the first ``used``
@@ -283,7 +293,8 @@ class LossDistribution:
         """
         a = np.asarray(attachment, dtype=float)
         top = a + np.asarray(limit, dtype=float)
-        a, top = np.broadcast_arrays(a, top)
+        if a.shape != top.shape:
+            a, top = np.broadcast_arrays(a, top)
         shape = a.shape
         specs = [(None, 0)] + ([(None, 1)] if second_moment else []) + [(g, 0) for g in distortions if g is not None]
         xs = np.concatenate([a.ravel(), top.ravel()])

@@ -180,8 +180,9 @@ def integral(sf, lo: float, hi: float = math.inf, distortion=None, *, scale: flo
 
 def _moment(sev: "Severity", order: int) -> float:
     """Mean (order 1) or variance (order 2) of ``sev``: scipy's when plausible, else by :func:`integral`."""
+    fast = getattr(sev.fast_sf, "mean" if order == 1 else "var", None)
     with np.errstate(all="ignore"):
-        value = float(sev.dist.mean() if order == 1 else sev.dist.var())
+        value = float(fast() if fast is not None else (sev.dist.mean() if order == 1 else sev.dist.var()))
     if value == math.inf or (math.isfinite(value) and value >= 0):
         return value
     # NaN or negative from scipy: E[X^k] = k * integral x^(k-1) S(x) dx (X >= 0)
@@ -258,6 +259,14 @@ class _LognormalSF:
         with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
             out = self.scale * np.exp(-self.sigma * special.ndtri(q))
         return out if out.ndim else out[()]
+
+    # mean and variance as scipy's lognorm computes them (its _stats, then scaled), without its machinery
+    def mean(self):
+        return float(np.sqrt(np.exp(self.sigma * self.sigma)) * self.scale + 0.0)
+
+    def var(self):
+        p = np.exp(self.sigma * self.sigma)
+        return float(p * (p - 1.0) * self.scale * self.scale)
 
     def __reduce__(self):
         return (_LognormalSF, (self.sigma, self.scale))

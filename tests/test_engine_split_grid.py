@@ -218,3 +218,7 @@ def test_lognormal_fast_paths_equal_scipy():
     np.testing.assert_array_equal(sev.ppf(q), ref.ppf(q))
     np.testing.assert_array_equal(sev.isf(q), ref.isf(q))
     assert np.isnan(sev.ppf(1.5)) and np.isnan(sev.isf(-0.1))
+    for m, cv in ((1.0, 0.1), (M, 2.5), (3e8, 12.0)):
+        s = lw.lognormal(mean=m, cv=cv)
+        assert s.mean == float(s.dist.mean()) and s.variance == float(s.dist.var())
+        assert s.mean == pytest.approx(m, rel=1e-12) and math.sqrt(s.variance) / s.mean == pytest.approx(cv, rel=1e-10)

@@ -23,6 +23,10 @@ class Frequency:
     def pgf(self, z: np.ndarray) -> np.ndarray:  # pragma: no cover - abstract
         raise NotImplementedError
 
+    def pgf_in_place(self, z: np.ndarray) -> np.ndarray:
+        """``pgf(z)``, allowed to overwrite ``z`` (a scratch array) to save temporaries."""
+        return self.pgf(z)
+
     @property
     def cv(self) -> float:
         return math.sqrt(self.variance) / self.mean if self.mean > 0 else 0.0
@@ -68,6 +72,11 @@ class Poisson(Frequency):
 
     def pgf(self, z):
         return np.exp(self.mean * (z - 1.0))
+
+    def pgf_in_place(self, z):
+        z -= 1.0
+        z *= self.mean  # the same products as mean * (z - 1)
+        return np.exp(z, out=z)
 
     def _scipy(self):
         return stats.poisson(self.mean)

@@ -411,7 +411,8 @@ class FrequencySeverity(LossModel):
     def _transform(self, piece) -> tuple:
         """(aggregate probabilities on the piece's used points, probability at or beyond their end)."""
         _, points, probs, tail, _, stop = piece
-        agg, beyond = aggregate(self.frequency.pgf, *_on_points(probs, tail, points), self.padding, self.frequency.max_count)
+        agg, beyond = aggregate(self.frequency.pgf_in_place, *_on_points(probs, tail, points), self.padding,
+                                self.frequency.max_count)
         if stop < points:
             agg = agg[:stop]
             beyond = max(1.0 - float(agg.sum()), 0.0)

@@ -2,7 +2,7 @@
 
 Run from the repository root (the package installed, e.g. ``pip install -e .``)::
 
-    python tests/benchmarks/run.py            # everything, about 2-3 minutes on 2 cores
+    python tests/benchmarks/run.py            # everything, about 1.5 minutes on 2 cores
     python tests/benchmarks/run.py --write    # ... and rewrite tests/benchmarks/RESULTS.md
     python tests/benchmarks/run.py --quick    # fewer repetitions and sizes, for a smoke check
     python tests/benchmarks/run.py --profile  # also print cProfile of the two towers
@@ -372,6 +372,7 @@ def section_towers(rep: Report, quick: bool, profile: bool):
     times = interleaved({
         "agg": lambda: engine_tower(AGG_TOWER),
         "agg_raw": raw_agg,
+        "agg_raw_uniform": raw_transform(grids["aggregate"][0][1]),  # one bare transform at the unsplit length
         "occ": lambda: engine_tower(OCC_TOWER),
         "occ_raw": raw_occ,
         "agg_warm": lambda: engine_tower(AGG_TOWER, warm_agg),
@@ -427,6 +428,13 @@ def section_towers(rep: Report, quick: bool, profile: bool):
     rep.table(["tower", "grid points", "engine ms (cold)", "... without the discretisation-error estimate", "engine ms (cached model)", "raw transform ms", "engine / raw",
                "Monte Carlo ms", "MC / engine", "top layer: engine worst rel. error", "top layer: MC worst rel. error",
                "top layer: MC error / engine error (worst measure)"], rows)
+
+    t_uniform = median(times["agg_raw_uniform"])
+    rep.data["fs"]["aggregate"]["t_raw_uniform"] = t_uniform
+    rep.add(f"For scale: one bare transform at the length of the uniform grid the split one stands for "
+            f"({grids['aggregate'][0][1]:,} points, padded) takes {ms(t_uniform)} ms, "
+            f"{t_uniform / rep.data['fs']['aggregate']['t_eng']:.1f}x the engine's whole aggregate tower.")
+    rep.add()
 
     for name in ("aggregate", "occurrence"):
         ref, levels = refs[name]

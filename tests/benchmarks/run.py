@@ -847,7 +847,7 @@ def machine(rep: Report):
 
 NOTES = """## How to read these figures
 
-* Command: `python tests/benchmarks/run.py --write` from the repository root (about 3-5 minutes on this
+* Command: `python tests/benchmarks/run.py --write` from the repository root (about 1.5 minutes on this
   2-core machine; `--quick` for a smoke run, `--only towers,samples,sheet,scaling` for some sections,
   `--profile` for cProfile of the two towers). Not collected by pytest; nothing asserts a time.
 * The machine is a shared 2-core VM whose speed changes from minute to minute (other sessions run test

@@ -357,7 +357,8 @@ class FrequencySeverity(LossModel):
         object.__setattr__(self, "_uniform_twin", None)
 
     def _annual_cached(self, a, l, below):
-        if below <= self._body_top(a, l):  # every result is read below the body's top: the body alone
+        top = self._body_top(a, l)
+        if top < math.inf and below <= top:  # a split grid read only below the body's top: the body alone
             return self._cache.get(("body", a, l), lambda: self._body(a, l))
         return self._cache.get((a, l), lambda: self._annual(a, l))
 
@@ -521,7 +522,8 @@ class FrequencySeverity(LossModel):
         for :meth:`annual`.
         """
         a, l = float(occ_attachment), float(occ_limit)
-        if float(below) <= self._body_top(a, l):
+        top = self._body_top(a, l)
+        if top < math.inf and float(below) <= top:
             return self._cache.get(("coarse body", a, l), lambda: self._coarse_body(a, l))
         return self._cache.get(("coarse", a, l), lambda: self._coarse(a, l))
 

@@ -222,3 +222,12 @@ def test_lognormal_fast_paths_equal_scipy():
         s = lw.lognormal(mean=m, cv=cv)
         assert s.mean == float(s.dist.mean()) and s.variance == float(s.dist.var())
         assert s.mean == pytest.approx(m, rel=1e-12) and math.sqrt(s.variance) / s.mean == pytest.approx(cv, rel=1e-10)
+
+
+def test_grids_that_are_not_split_have_one_distribution_per_terms():
+    """Reading below some loss changes nothing for a grid that is not split: one cached entry, as before."""
+    model = lw.FrequencySeverity(FREQ, SEV)
+    lw.price_layers(model, [lw.Layer.occurrence(2 * M, 3 * M, reinstatements=2)], G)
+    keys = set(model._cache._items)
+    assert keys == {(2 * M, 3 * M), ("coarse", 2 * M, 3 * M)}
+    assert model.annual(2 * M, 3 * M, below=1.0) is model.annual(2 * M, 3 * M)

@@ -40,6 +40,7 @@ from scipy import integrate, special
 
 import layerwise.engine as lw
 
+from closed_forms import lognormal_params, lognormal_lev, lognormal_sf, lognormal_pdf, pareto_lev  # Loss Models, App. A
 from grid_parts import grid_parts
 
 # the checks bound the grid's errors themselves; the engine's own discretisation warnings are not under test here
@@ -47,40 +48,6 @@ pytestmark = pytest.mark.filterwarnings("ignore::layerwise.engine.GridWarning")
 
 RTOL = 1e-9  # round-off allowance on top of the discretisation bounds
 SF_ATOL = 1e-14  # average survival round-off of the Fourier grid over a layer (see the limited-expected-value tests)
-
-
-# --------------------------------------------------------------------------- closed forms
-def lognormal_lev(d, mu, sigma):
-    """E[X ^ d] of a lognormal (Loss Models, App. A)."""
-    d = np.asarray(d, dtype=float)
-    with np.errstate(divide="ignore"):
-        z = np.log(d)
-    return np.exp(mu + 0.5 * sigma**2) * special.ndtr((z - mu - sigma**2) / sigma) + d * special.ndtr(-(z - mu) / sigma)
-
-
-def pareto_lev(d, alpha, theta):
-    """E[X ^ d] of a Pareto (Lomax) (Loss Models, App. A); theta ln(1 + d/theta) at alpha = 1."""
-    d = np.asarray(d, dtype=float)
-    if abs(alpha - 1.0) < 1e-15:
-        return theta * np.log1p(d / theta)
-    return theta / (alpha - 1.0) * (1.0 - (theta / (d + theta)) ** (alpha - 1.0))
-
-
-def lognormal_sf(x, mu, sigma):
-    with np.errstate(divide="ignore"):
-        return special.ndtr(-(np.log(np.asarray(x, dtype=float)) - mu) / sigma)
-
-
-def lognormal_pdf(x, mu, sigma):
-    x = np.asarray(x, dtype=float)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        out = np.exp(-0.5 * ((np.log(x) - mu) / sigma) ** 2) / (x * sigma * math.sqrt(2.0 * math.pi))
-    return np.where(x > 0, out, 0.0)
-
-
-def lognormal_params(mean, cv):
-    sigma = math.sqrt(math.log1p(cv * cv))
-    return math.log(mean) - 0.5 * sigma * sigma, sigma
 
 
 # --------------------------------------------------------------------------- grid error bounds

@@ -23,11 +23,13 @@ import math
 
 import numpy as np
 import pytest
-from scipy import special
 
 import layerwise.engine as lw
 from layerwise.engine.fourier import discretise
 
+from closed_forms import (  # Loss Models, App. A
+    lognormal_lev, lognormal_params, lognormal_pdf, lognormal_sf, pareto_lev, pareto_pdf, pareto_sf,
+)
 from grid_parts import grid_parts
 
 ON_GRID_RTOL = 1e-9  # bounds on grid points: exact up to round-off
@@ -36,49 +38,6 @@ ON_GRID_RTOL = 1e-9  # bounds on grid points: exact up to round-off
 # 1e-13 where S > 1e-6, up to 1e-11 in the far tail (S ~ 1e-10). Allowed as an average error of S
 # over a layer; every layer below lies where S > 1e-9 over most of its length.
 SF_ATOL = 1e-14
-
-
-# --------------------------------------------------------------------------- closed forms (Loss Models, App. A)
-def lognormal_lev(d, mu, sigma):
-    """E[X ^ d] = exp(mu + sigma^2/2) Phi((ln d - mu - sigma^2)/sigma) + d (1 - Phi((ln d - mu)/sigma))."""
-    d = np.asarray(d, dtype=float)
-    with np.errstate(divide="ignore"):
-        z = np.log(d)
-    return np.exp(mu + 0.5 * sigma**2) * special.ndtr((z - mu - sigma**2) / sigma) + d * special.ndtr(-(z - mu) / sigma)
-
-
-def lognormal_sf(x, mu, sigma):
-    with np.errstate(divide="ignore"):
-        return special.ndtr(-(np.log(np.asarray(x, dtype=float)) - mu) / sigma)
-
-
-def lognormal_pdf(x, mu, sigma):
-    x = np.asarray(x, dtype=float)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        out = np.exp(-0.5 * ((np.log(x) - mu) / sigma) ** 2) / (x * sigma * math.sqrt(2 * math.pi))
-    return np.where(x > 0, out, 0.0)
-
-
-def pareto_lev(d, alpha, theta):
-    """Pareto (Lomax) E[X ^ d] = theta/(alpha-1) [1 - (theta/(d+theta))^(alpha-1)]; -theta ln(theta/(d+theta)) at alpha = 1."""
-    d = np.asarray(d, dtype=float)
-    if alpha == 1.0:
-        return theta * np.log1p(d / theta)
-    return theta / (alpha - 1.0) * (1.0 - (theta / (d + theta)) ** (alpha - 1.0))
-
-
-def pareto_sf(x, alpha, theta):
-    return (theta / (np.asarray(x, dtype=float) + theta)) ** alpha
-
-
-def pareto_pdf(x, alpha, theta):
-    return alpha * theta**alpha / (np.asarray(x, dtype=float) + theta) ** (alpha + 1.0)
-
-
-def lognormal_params(mean, cv):
-    """(mu, sigma) of a lognormal with this mean and cv: sigma^2 = ln(1 + cv^2), mu = ln(mean) - sigma^2 / 2."""
-    sigma = math.sqrt(math.log1p(cv * cv))
-    return math.log(mean) - 0.5 * sigma * sigma, sigma
 
 
 # --------------------------------------------------------------------------- tolerance of a layer

@@ -25,17 +25,11 @@ from scipy import special
 
 import layerwise.engine as lw
 
+from closed_forms import lognormal_lev  # Loss Models, App. A
+
 pytestmark = pytest.mark.filterwarnings("ignore::layerwise.engine.GridWarning")
 
 LEVELS = [0.5, 0.9, 0.99, 0.996, 0.999]
-
-
-def lognormal_lev(d, mu, sigma):
-    """E[X ^ d] of a lognormal (Klugman, Panjer & Willmot, *Loss Models*, App. A)."""
-    d = np.asarray(d, dtype=float)
-    with np.errstate(divide="ignore"):
-        z = np.log(d)
-    return np.exp(mu + 0.5 * sigma**2) * special.ndtr((z - mu - sigma**2) / sigma) + d * special.ndtr(-(z - mu) / sigma)
 
 
 def discretised_normal(mu, sigma, h, width):

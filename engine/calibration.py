@@ -198,6 +198,21 @@ def _each_family(fn, families, errors):
     return rows
 
 
+def _family_table(fn, families, errors, columns) -> pd.DataFrame:
+    """One row per family from ``fn(family class)`` (a result with ``as_series``); a family that
+    failed (``errors="skip"``) gets NaNs and its reason in ``note``."""
+    out = []
+    for cls, res, note in _each_family(fn, families, errors):
+        if res is None:
+            out.append({"family": cls.family, "parameter": cls.parameter, "note": note})
+        else:
+            row = res.as_series().to_dict()
+            row.pop("distortion")
+            row["note"] = ""
+            out.append(row)
+    return pd.DataFrame(out).reindex(columns=columns)
+
+
 _CAL_COLUMNS = ["family", "parameter", "value", "standard", "assets", "expected_loss", "premium", "margin",
                 "capital", "return_on_capital", "leverage", "note"]
 
@@ -208,16 +223,7 @@ def calibrate(model, target_return: float, standard: CapitalStandard, families=N
     ``families`` defaults to :data:`DEFAULT_FAMILIES`. With ``errors="skip"`` a
     family that cannot reach the target gets NaNs and its reason in ``note``.
     """
-    out = []
-    for cls, res, note in _each_family(lambda c: calibrate_to_return(model, target_return, standard, c), families, errors):
-        if res is None:
-            out.append({"family": cls.family, "parameter": cls.parameter, "note": note})
-        else:
-            row = res.as_series().to_dict()
-            row.pop("distortion")
-            row["note"] = ""
-            out.append(row)
-    return pd.DataFrame(out).reindex(columns=_CAL_COLUMNS)
+    return _family_table(lambda c: calibrate_to_return(model, target_return, standard, c), families, errors, _CAL_COLUMNS)
 
 
 def price_at_target(model: LossModel, layers, target_return: float, standard: CapitalStandard, families=None, *,
@@ -350,16 +356,7 @@ def implied_parameters(model: LossModel, layer: Layer, *, premium=None, rate_on_
                        errors: str = "raise") -> pd.DataFrame:
     """One row per family: the parameter reproducing the observed price of ``layer``."""
     fn = lambda c: implied_parameter(model, layer, c, premium=premium, rate_on_line=rate_on_line)  # noqa: E731
-    out = []
-    for cls, res, note in _each_family(fn, families, errors):
-        if res is None:
-            out.append({"family": cls.family, "parameter": cls.parameter, "note": note})
-        else:
-            row = res.as_series().to_dict()
-            row.pop("distortion")
-            row["note"] = ""
-            out.append(row)
-    return pd.DataFrame(out).reindex(columns=_IMP_COLUMNS)
+    return _family_table(fn, families, errors, _IMP_COLUMNS)
 
 
 _MEASURES = ("premium", "rate_on_line", "loss_ratio", "margin", "return_on_capital")

@@ -421,8 +421,13 @@ class FrequencySeverity(LossModel):
 
     def _body(self, a, l) -> LossDistribution:
         """The distribution below the body's top of a split grid, the rest held at that top."""
+        return self._first(a, l)
+
+    def _first(self, a, l) -> LossDistribution:
+        """The distribution on the first grid of :meth:`_piece_specs`: the whole of an ordinary grid,
+        the body of a split one."""
         piece = self._piece(a, l, 0)
-        return self._with_diagnostics(self._on_grid(piece, *self._transform(piece)), (piece,), a, l)
+        return self._with_diagnostics(self._on_grid(piece, *self._transform(piece)), piece, a, l)
 
     @staticmethod
     def _on_grid(piece, agg, beyond) -> LossDistribution:
@@ -463,26 +468,25 @@ class FrequencySeverity(LossModel):
         return LossDistribution(out_values, out_sf)
 
     def _annual(self, a, l):
-        specs = self._piece_specs(a, l)
-        if len(specs) == 1:
-            piece = self._piece(a, l, 0)
-            return self._with_diagnostics(self._on_grid(piece, *self._transform(piece)), (piece,), a, l)
+        if len(self._piece_specs(a, l)) == 1:
+            return self._first(a, l)
         body = self._cache.get(("body", a, l), lambda: self._body(a, l))
         piece = self._piece(a, l, 1)
-        dist = self._join(body, piece, *self._transform(piece))
-        return self._with_diagnostics(dist, (self._piece(a, l, 0), piece), a, l)
+        return self._with_diagnostics(self._join(body, piece, *self._transform(piece)), piece, a, l)
 
-    def _with_diagnostics(self, dist: LossDistribution, pieces, a, l) -> LossDistribution:
+    def _with_diagnostics(self, dist: LossDistribution, piece, a, l) -> LossDistribution:
+        """``dist`` with its diagnostics; ``piece`` is the grid that reaches the top of ``dist``."""
         h, n = self.grid(a, l)
-        top = pieces[-1][5] * pieces[-1][0]  # the top of the grid that reaches furthest
+        bucket, _, probs, tail, _, stop = piece
+        top = stop * bucket
         sev = self.severity
         diag = {"bucket": h, "grid_length": n, "method": self.method, "grid_top": top, "beyond": dist.beyond}
-        if self._body_top(a, l) < math.inf:
-            diag["body_points"], diag["body_top"] = self.body_points(a, l), self._body_top(a, l)
-            if len(pieces) > 1:
-                diag["tail_bucket"] = pieces[1][0]
+        body_top = self._body_top(a, l)
+        if body_top < math.inf:
+            diag["body_points"], diag["body_top"] = self.body_points(a, l), body_top
+            if bucket != h:  # the coarse grid, above the body
+                diag["tail_bucket"] = bucket
         # the severity's grid moments from the piece that reaches the top
-        bucket, _, probs, tail = pieces[-1][:4]
         k = np.arange(probs.size, dtype=float) * bucket
         # einsum, not @: a BLAS dot of this size wakes OpenBLAS's threads, which on a busy
         # 2-core machine costs 10-20 ms per call instead of 20 microseconds
@@ -498,7 +502,7 @@ class FrequencySeverity(LossModel):
         freq = self.frequency
 
         def pending():
-            return {**_analytic_moments(sev, freq, a, l, to_top), **_grid_moments(dist)}
+            return {**_analytic_moments(sev, freq, a, l, top, to_top), **_grid_moments(dist)}
 
         object.__setattr__(dist, "diagnostics", _Diagnostics(diag, _Once(pending), _DIAGNOSTIC_KEYS))
         return dist
@@ -528,14 +532,13 @@ class FrequencySeverity(LossModel):
         return self._cache.get(("coarse", a, l), lambda: self._coarse(a, l))
 
     def _coarse_body(self, a, l):
+        """The error-estimate distribution on the first grid (see :meth:`_first`)."""
         piece = _merged(self._piece(a, l, 0, release=True), l)
         return self._on_grid(piece, *self._transform(piece))
 
     def _coarse(self, a, l):
-        specs = self._piece_specs(a, l)
-        if len(specs) == 1:
-            piece = _merged(self._piece(a, l, 0, release=True), l)
-            return self._on_grid(piece, *self._transform(piece))
+        if len(self._piece_specs(a, l)) == 1:
+            return self._coarse_body(a, l)  # the first grid is the whole
         body = self._cache.get(("coarse body", a, l), lambda: self._coarse_body(a, l))
         piece = _merged(self._piece(a, l, 1, release=True), l)
         return self._join(body, piece, *self._transform(piece))
@@ -652,10 +655,13 @@ def _mean_to_top(sev: Severity, a: float, l: float, top: float) -> float:
     return integral(sev.sf, a, min(a + min(l, top), sev.upper), first=first)
 
 
-def _analytic_moments(sev: Severity, f: Frequency, a: float, l: float, to_top: float) -> dict:
-    """Mean and cv of the layered severity min(max(X - a, 0), l) and of the annual total, by quadrature."""
+def _analytic_moments(sev: Severity, f: Frequency, a: float, l: float, top: float, to_top: float) -> dict:
+    """Mean and cv of the layered severity min(max(X - a, 0), l) and of the annual total, by quadrature.
+
+    ``to_top`` is :func:`_mean_to_top` for the grid ``top``: the layered mean itself when the layer ends below it.
+    """
     upper = a + l
-    m1 = _integrate_sf(sev, a, upper) if not (math.isfinite(l) and math.isfinite(to_top)) else to_top
+    m1 = to_top if l <= top else _integrate_sf(sev, a, upper)
     m2 = 2.0 * _integrate_sf(sev, a, upper, weight_from=a)
     agg_mean = f.mean * m1
     agg_var = f.mean * (m2 - m1 * m1) + f.variance * m1 * m1 if math.isfinite(m2) else math.inf

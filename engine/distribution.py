@@ -146,129 +146,104 @@ class LossDistribution:
     def _tail_integrals(self, x: np.ndarray, specs, *, differences: bool = False) -> list:
         """One pass over the atoms for several integrands: ``[tail_integral(x, g, p) for g, p in specs]``.
 
-        The segments are visited from the top down in blocks of up to
-        ``_BLOCK`` atoms (one block when they fit), carrying the running sum from block to block, so the sums are
-        the same sequential top-down sums as one cumulative sum over the whole
-        array (bit for bit) while no temporary is larger than a block. Only
-        the running sums at the query points are kept, never a full array, so
-        pricing needs O(block) memory beyond the distribution itself; g is
-        evaluated once per block for each distinct distortion.
+        The sums run over the segments between consecutive query points
+        (``np.add.reduceat``, pairwise and vectorised), and those few partial
+        sums are then accumulated from the top down, so high layers keep their
+        relative precision. Only segments at or above the lowest query point
+        take part, so g is evaluated once per distinct distortion on those
+        atoms alone; beyond ``_BLOCK`` of them they are visited in blocks
+        (each block's edge is one more query point), so no temporary is larger
+        than a block.
 
         With ``differences`` only differences between the results are wanted
-        (layer integrals): the running sums then start at the highest atom any
-        query needs rather than at the top, so atoms above every layer cost
+        (layer integrals): the sums then start at the highest atom any query
+        needs rather than at the top, so atoms above every layer cost
         nothing, and each result is off by one common constant.
         """
-        v, sf = self.values, self.sf
+        v = self.values
         n = v.size
-        xc = np.minimum(x, v[-1])
-        i = np.searchsorted(v, xc, side="right") - 1
-        inside = i >= 0
-        j = np.clip(i, 0, n - 1)
-        jn = np.clip(j + 1, 0, n - 1)
-        # above[k] = integral over [v[k], inf) is needed at jn and at 0; g(S) on segment j at j.
-        q_above = np.append(jn.ravel(), 0)
-        q_lev = j.ravel()
+        xf = np.minimum(x.ravel(), v[-1])
+        j = np.searchsorted(v, xf, side="right") - 1  # the segment [v[j], v[j + 1]) holding each point
+        head = j < 0  # below the first atom, where g(S) = g(1) = 1
+        has_head = bool(head.any())
+        j = np.maximum(j, 0)
+        jn = np.minimum(j + 1, n - 1)
+        step = jn > j  # False at the last atom: a zero-width part, whatever g(S) is looked up there
+        # above[k] = integral over [v[k], inf) is needed at jn (and at 0 below the first atom)
+        q_above = np.append(jn, 0) if has_head else jn
         used = n if not differences else int(q_above.max()) + 1  # atoms 0 .. used - 1 take part
-        if 2 <= used <= _BLOCK + 1:
-            above_q, lev_q = self._one_block(specs, q_above, np.minimum(q_lev, used - 2), used)
+        k, m = len(specs), xf.size
+        if used < 2:  # a single atom: only the part below it has width
+            above_q, lev_q = np.zeros((k, q_above.size)), np.zeros((k, m))
         else:
-            above_q, lev_q = self._blocks(specs, q_above, q_lev, used)
-        # all integrands at once: rows are specs, columns the query points
-        m = jn.size
-        above_q, lev_q = np.asarray(above_q), np.asarray(lev_q)
-        xf, jf, jnf = xc.ravel(), j.ravel(), jn.ravel()
-        vjn = v[jnf]
+            above_q, lev_q = self._running_sums(specs, q_above, np.minimum(j, used - 2), used)
+        vjn = v[jn]
         squared = [t for t, (_, power) in enumerate(specs) if power == 1]
-        widths = np.empty((len(specs), m))
-        heads = np.empty((len(specs), m))
+        widths = np.empty((k, m))
         widths[:] = vjn - xf
-        heads[:] = v[0] - xf  # g(1) = 1 below the first atom
         if squared:
             widths[squared] = 0.5 * (vjn**2 - xf**2)  # 0.5 x exact: same bits as before
-            heads[squared] = 0.5 * (v[0] ** 2 - xf**2)
-        heads += above_q[:, m : m + 1]
-        step = jnf > jf  # False also discards g(S) looked up for j = n - 1 (a zero-width part)
         widths *= lev_q
-        out = above_q[:, :m] * step
-        out += np.where(step, widths, 0.0)
-        keep_head = ~inside.ravel()
-        if keep_head.any():
-            out[:, keep_head] = heads[:, keep_head]
+        out = np.where(step, above_q[:, :m] + widths, 0.0)
+        if has_head:
+            heads = np.empty((k, m))
+            heads[:] = v[0] - xf
+            if squared:
+                heads[squared] = 0.5 * (v[0] ** 2 - xf**2)
+            heads += above_q[:, m : m + 1]
+            out[:, head] = heads[:, head]
         out[:, x.ravel() >= v[-1]] = 0.0
-        return list(out.reshape((len(specs),) + x.shape))
+        return list(out.reshape((k,) + x.shape))
 
-    def _one_block(self, specs, q_above, q_lev, used):
-        """Running top-down sums and levels at the query points when all segments (of the first ``used``
-        atoms) fit one block: every integrand in one 2-D pass."""
-        v, sf = self.values[:used], self.sf[:used]
-        hi = used - 1
+    def _running_sums(self, specs, q_above, q_lev, used):
+        """For each integrand, the sum over segments s in [q, used - 1) of g(S_s) times the segment's
+        width (or half its change of t**2), at each q in ``q_above``; and g(S) at each index in ``q_lev``.
+        Shapes (len(specs), q_above.size) and (len(specs), q_lev.size)."""
+        v, sf = self.values, self.sf
+        hi = used - 1  # segments 0 .. hi - 1; segment s is [v[s], v[s + 1])
+        lo = int(min(q_above.min(), q_lev.min()))  # no query reads a segment below this one
+        starts = np.unique(q_above[q_above < hi])
+        block = hi - lo if hi - lo <= _BLOCK else min(_BLOCK, max(_MIN_BLOCK, (hi - lo) // 16))
+        edges = np.arange(lo, hi, block)
+        if edges.size > 1 and starts.size:
+            # every block edge above the lowest start is a start too, so no partial sum crosses a block
+            starts = np.union1d(starts, edges[edges > starts[0]])
         rows: dict = {}
         for g, _ in specs:
             rows.setdefault(id(g), g)
-        levels = np.empty((len(rows), hi))
-        interior = hi > 0 and sf[0] < 1.0 and sf[hi - 1] > 0.0  # sf is non-increasing: all of sf[:hi] in (0, 1)
-        for r, g in enumerate(rows.values()):
-            if g is None:
-                levels[r] = sf[:hi]
-            else:  # a constant g broadcasts; plain functions (no ``inside``) are called as they are
-                lean = getattr(g, "inside", None) if interior else None
-                levels[r] = lean(sf[:hi]) if lean is not None else np.asarray(g(sf[:hi]), dtype=float)
         which = [list(rows).index(id(g)) for g, _ in specs]
-        width = v[1:] - v[:-1]
-        seg = np.empty((len(specs), hi + 1))
-        seg[:, 0] = 0.0
-        for t, (g, power) in enumerate(specs):
-            # reversed, so that one cumulative sum along each row runs from the top down
-            np.multiply(levels[which[t], ::-1], width[::-1] if power == 0 else 0.5 * (v[1:] ** 2 - v[:-1] ** 2)[::-1],
-                        out=seg[t, 1:])
-        np.cumsum(seg, axis=1, out=seg)  # seg[t, hi - s] = above[s]; seg[t, 0] = above[n - 1] = 0
-        return seg[:, hi - q_above], levels[which][:, q_lev]
-
-    def _blocks(self, specs, q_above, q_lev, used):
-        """Running top-down sums and levels at the query points, block by block from atom ``used - 1``."""
-        v, sf = self.values[:used], self.sf[:used]
-        n = used
-        order_a = np.argsort(q_above, kind="stable")
-        qa_sorted = q_above[order_a]
-        order_l = np.argsort(q_lev, kind="stable")
-        ql_sorted = q_lev[order_l]
         k = len(specs)
-        above_q = [np.zeros(q_above.size) for _ in range(k)]  # above[n - 1] = 0: no segment there
-        lev_q = [np.zeros(q_lev.size) for _ in range(k)]  # g(S) at j = n - 1 multiplies a zero-width part
-        carry = [0.0] * k
-        block = min(_BLOCK, max(_MIN_BLOCK, n // 16))  # temporaries of about half the distribution's size at most
-        hi = n - 1  # segments are 0 .. n - 2; segment s is [v[s], v[s + 1])
-        while hi > 0:
-            lo = max(hi - block, 0)
-            levels = {}
-            width = None
-            squares = None
-            for t, (g, power) in enumerate(specs):
-                key = id(g)
-                if key not in levels:
-                    levels[key] = sf[lo:hi] if g is None else np.broadcast_to(np.asarray(g(sf[lo:hi]), dtype=float), (hi - lo,))
-                lev = levels[key]
-                if power == 0:
-                    if width is None:
-                        width = v[lo + 1 : hi + 1] - v[lo:hi]
-                    seg = lev * width
-                else:
-                    if squares is None:
-                        squares = v[lo + 1 : hi + 1] ** 2 - v[lo:hi] ** 2
-                    seg = lev * 0.5 * squares
-                run = np.empty(hi - lo + 1)
-                run[0] = carry[t]
-                run[1:] = seg[::-1]
-                np.cumsum(run, out=run)  # run[hi - s] = above[s] for s in [lo, hi)
-                carry[t] = run[-1]
-                a0, a1 = np.searchsorted(qa_sorted, (lo, hi), side="left")
-                if a1 > a0:
-                    above_q[t][order_a[a0:a1]] = run[hi - qa_sorted[a0:a1]]
-                l0, l1 = np.searchsorted(ql_sorted, (lo, hi), side="left")
-                if l1 > l0:
-                    lev_q[t][order_l[l0:l1]] = lev[ql_sorted[l0:l1] - lo]
-            hi = lo
+        sums = np.zeros((k, starts.size))
+        lev_q = np.zeros((k, q_lev.size))
+        for b0 in edges:
+            b1 = min(b0 + block, hi)
+            s = sf[b0:b1]
+            levels = np.empty((len(rows), b1 - b0))
+            interior = s[0] < 1.0 and s[-1] > 0.0  # sf is non-increasing: all of s in (0, 1)
+            for r, g in enumerate(rows.values()):
+                if g is None:
+                    levels[r] = s
+                else:  # a constant g broadcasts; plain functions (no ``inside``) are called as they are
+                    lean = getattr(g, "inside", None) if interior else None
+                    levels[r] = lean(s) if lean is not None else np.asarray(g(s), dtype=float)
+            i0, i1 = np.searchsorted(starts, (b0, b1))
+            if i1 > i0:
+                lv = v[b0 : b1 + 1]
+                width = lv[1:] - lv[:-1]
+                prod = np.empty((k, b1 - b0))
+                for t, (_, power) in enumerate(specs):
+                    np.multiply(levels[which[t]], width if power == 0 else 0.5 * (lv[1:] ** 2 - lv[:-1] ** 2), out=prod[t])
+                sums[:, i0:i1] = np.add.reduceat(prod, starts[i0:i1] - b0, axis=1)
+            inside = (q_lev >= b0) & (q_lev < b1)
+            if edges.size == 1:
+                lev_q = levels[which][:, q_lev - b0]
+            elif inside.any():
+                lev_q[:, inside] = levels[which][:, q_lev[inside] - b0]
+        above = np.cumsum(sums[:, ::-1], axis=1)[:, ::-1]  # above[:, i]: from starts[i] to the top
+        above_q = np.zeros((k, q_above.size))
+        if starts.size:
+            read = q_above < hi
+            above_q[:, read] = above[:, np.searchsorted(starts, q_above[read])]
         return above_q, lev_q
 
     def layer_integral(self, attachment, limit, distortion=None) -> np.ndarray:

@@ -782,6 +782,9 @@ def _count_quantile(freq: Frequency, q: float, reach: float = 1.0) -> float:
 def _integrate_sf(sev: Severity, a: float, b: float, weight_from: float | None = None) -> float:
     """integral_a^b S(x) dx, or integral_a^b (x - weight_from) S(x) dx; inf when it diverges."""
     if weight_from is None:
+        closed = getattr(sev.fast_sf, "layer_mean", None)
+        if closed is not None and b - a >= 1e-2 * b:  # a narrower layer would lose digits to cancellation
+            return closed(a, b)
         if not math.isfinite(b):
             # E[(X - a)+] = E[X] - E[min(X, a)]
             mean = sev.mean

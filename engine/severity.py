@@ -268,6 +268,28 @@ class _LognormalSF:
         p = np.exp(self.sigma * self.sigma)
         return float(p * (p - 1.0) * self.scale * self.scale)
 
+    def layer_mean(self, a: float, b: float) -> float:
+        """integral_a^b S(x) dx, 0 <= a < b <= inf, in closed form.
+
+        By parts, b S(b) - a S(a) + E[X; a < X <= b], with the partial
+        expectation exp(mu + sigma^2 / 2) (Phi(sigma - z(a)) - Phi(sigma - z(b))),
+        z(x) = log(x / scale) / sigma (Klugman, Panjer & Willmot, Loss Models,
+        App. A, the lognormal's limited expected value). Written with upper
+        tails so that a remote layer keeps its relative precision.
+        """
+        sigma = self.sigma
+
+        def tails(x):  # (x S(x), P-weighted upper tail Phi(sigma - z(x))) at x
+            if x <= 0.0:
+                return 0.0, 1.0
+            if x == math.inf:
+                return 0.0, 0.0
+            z = math.log(x / self.scale) / sigma
+            return x * float(special.ndtr(-z)), float(special.ndtr(sigma - z))
+
+        (sa, ua), (sb, ub) = tails(a), tails(b)
+        return max(sb - sa + self.scale * math.exp(0.5 * sigma * sigma) * (ua - ub), 0.0)
+
     def __reduce__(self):
         return (_LognormalSF, (self.sigma, self.scale))
 

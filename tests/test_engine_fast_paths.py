@@ -1,0 +1,204 @@
+"""The engine's fast paths against slow, independent computations of the same numbers.
+
+* Layer integrals of a step survival function: segment sums between the query
+  points (numpy's ``add.reduceat``), accumulated from the top down, against
+  the same integral summed segment by segment with ``math.fsum`` (exact
+  rounding), with and without blocks.
+* The lognormal's layer mean integral_a^b S in closed form, against the
+  limited expected values of Klugman, Panjer & Willmot, *Loss Models* (App. A)
+  and against ``scipy.integrate.quad``.
+* Severity discretisation: the bucket means of S from Simpson, Boole and the
+  next Romberg column (Gauss-Legendre only where they disagree), against
+  ``scipy.integrate.quad`` bucket by bucket.
+"""
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pytest
+from scipy import integrate
+
+import layerwise.engine as lw
+import layerwise.engine.distribution as distribution
+from layerwise.engine.distribution import LossDistribution
+from layerwise.engine import fourier
+from layerwise.engine.fourier import discretise
+
+from closed_forms import lognormal_lev, lognormal_params
+
+GS = [lw.WangTransform(0.4), lw.ProportionalHazard(0.7), lw.TVaRDistortion(0.95), lw.DualPower(2.0), lw.CostOfCapital(0.1)]
+
+
+def exact_layer(dist: LossDistribution, a: float, l: float, g) -> float:
+    """integral_a^(a+l) g(S(x)) dx summed piece by piece with math.fsum: S = 1 below the first atom,
+    sf[i] on [values[i], values[i + 1])."""
+    lev = dist.sf if g is None else np.asarray(g(dist.sf), dtype=float)
+    starts = np.concatenate([[0.0], dist.values])
+    levels = np.concatenate([[1.0], lev])
+    ends = np.append(dist.values, math.inf)
+    b = a + l
+    parts = []
+    for x0, x1, s in zip(starts, ends, levels):
+        lo, hi = max(x0, a), min(x1, b)
+        if hi > lo and s > 0:
+            parts.append(float(s) * (hi - lo))
+    return math.fsum(parts)
+
+
+def random_distribution(rng, n: int, with_zero: bool) -> LossDistribution:
+    v = np.unique(rng.gamma(2.0, 10.0, n))
+    if with_zero:
+        v = np.concatenate([[0.0], v])
+    p = rng.random(v.size)
+    return LossDistribution.from_atoms(v, p / p.sum(), sorted_unique=True)
+
+
+@pytest.mark.parametrize("n", [1, 2, 7, 300, 20_000])
+@pytest.mark.parametrize("with_zero", [False, True])
+def test_layer_integrals_equal_exactly_rounded_sums(n, with_zero):
+    rng = np.random.default_rng(n + 7 * with_zero)
+    d = random_distribution(rng, n, with_zero)
+    top = d.max
+    # layers below, across and above the atoms, a point layer, one unlimited, some starting below the first atom
+    a = np.concatenate([rng.uniform(0.0, 1.1 * top, 6), [0.0, 0.5 * d.values[0], top, 2 * top]])
+    lim = np.concatenate([rng.choice([0.5, 5.0, 40.0], 6), [math.inf, 0.25 * top + 1.0, 1.0, 3.0]])
+    e, second, prices = d.layer_profile(a, lim, GS)
+    scale = top + 1.0  # absolute tolerance: round-off of sums of widths up to the top
+    for k in range(a.size):
+        assert e[k] == pytest.approx(exact_layer(d, a[k], lim[k], None), rel=1e-13, abs=1e-14 * scale)
+        for g, p in zip(GS, prices):
+            assert p[k] == pytest.approx(exact_layer(d, a[k], lim[k], g), rel=1e-13, abs=1e-14 * scale)
+        # the second moment 2 integral_a^b (x - a) S(x) dx, by fsum over the same pieces
+        b = a[k] + lim[k]
+        if math.isfinite(b):
+            starts = np.concatenate([[0.0], d.values])
+            ends = np.append(d.values, math.inf)
+            levels = np.concatenate([[1.0], d.sf])
+            parts = [s * ((min(x1, b) - a[k]) ** 2 - (max(x0, a[k]) - a[k]) ** 2)
+                     for x0, x1, s in zip(starts, ends, levels) if min(x1, b) > max(x0, a[k])]
+            assert second[k] == pytest.approx(math.fsum(parts), rel=1e-11, abs=1e-13 * scale**2)
+    # tail integrals (no differences): integral_x^inf g(S)
+    x = np.array([0.0, 0.3 * top, top, 1.5 * top])
+    for g in [None] + GS:
+        got = d.tail_integral(x, g)
+        want = [exact_layer(d, xi, math.inf, g) for xi in x]
+        np.testing.assert_allclose(got, want, rtol=1e-13, atol=1e-14 * scale)
+
+
+def test_blocks_agree_with_one_pass(monkeypatch):
+    """A distribution longer than a block is summed block by block: the same results up to round-off."""
+    rng = np.random.default_rng(3)
+    d = random_distribution(rng, 50_000, True)
+    a = np.array([0.0, 3.0, 17.5, 40.0, 80.0])
+    lim = np.array([5.0, 30.0, math.inf, 10.0, 1.0])
+    whole = d.layer_profile(a, lim, GS)
+    monkeypatch.setattr(distribution, "_BLOCK", 1000)
+    monkeypatch.setattr(distribution, "_MIN_BLOCK", 500)
+    blocked = d.layer_profile(a, lim, GS)
+    np.testing.assert_allclose(blocked[0], whole[0], rtol=1e-13)
+    np.testing.assert_allclose(blocked[1], whole[1], rtol=1e-12)
+    for p, q in zip(blocked[2], whole[2]):
+        np.testing.assert_allclose(p, q, rtol=1e-13)
+    for k in range(a.size):
+        assert blocked[2][0][k] == pytest.approx(exact_layer(d, a[k], lim[k], GS[0]), rel=1e-13)
+
+
+@pytest.mark.parametrize("mean,cv", [(1e6, 2.5), (1e6, 0.3), (5e4, 8.0)])
+def test_lognormal_layer_mean_closed_form(mean, cv):
+    """integral_a^b S = E[X ^ b] - E[X ^ a] (Loss Models, App. A) in the body; scipy's quad in log x
+    in the far tail, where the difference of limited expected values has lost its digits."""
+    sev = lw.lognormal(mean=mean, cv=cv)
+    mu, sigma = lognormal_params(mean, cv)
+    closed = sev.fast_sf.layer_mean
+    for qa, qb in [(0.0, 0.5), (0.1, 0.9), (0.5, 0.99), (0.0, 1.0)]:
+        a = float(sev.ppf(qa)) if qa > 0 else 0.0
+        b = float(sev.ppf(qb)) if qb < 1 else math.inf
+        want = (mean if b == math.inf else float(lognormal_lev(b, mu, sigma))) - (float(lognormal_lev(a, mu, sigma)) if a > 0 else 0.0)
+        assert closed(a, b) == pytest.approx(want, rel=1e-12)
+    for qa in [0.999, 1 - 1e-7, 1 - 1e-12]:
+        a = float(sev.ppf(qa))
+        for b in [1.05 * a, 3.0 * a, math.inf]:
+            assert closed(a, b) == pytest.approx(quad_in_log(sev, a, b), rel=1e-11)
+    assert closed(0.0, math.inf) == pytest.approx(mean, rel=1e-14)
+
+
+def quad_in_log(sev, a: float, b: float) -> float:
+    """integral_a^b S(x) dx by scipy's quad after x = e^t (smooth in t; an infinite end is cut 40 sigma
+    above the median, a zero one 40 sigma below)."""
+    sigma = sev.fast_sf.sigma
+    median = float(sev.ppf(0.5))
+    lo = math.log(a) if a > 0 else math.log(median) - 40 * sigma
+    hi = math.log(b) if math.isfinite(b) else math.log(median) + 40 * sigma
+    return integrate.quad(lambda t: float(sev.sf(math.exp(t))) * math.exp(t), lo, hi, epsabs=0.0, epsrel=1e-13, limit=400)[0]
+
+
+def test_model_diagnostics_use_the_closed_form_and_agree_with_quadrature():
+    """The severity mean the grid is checked against is the same number as by quadrature."""
+    sev = lw.lognormal(mean=1e6, cv=2.5)
+    for a, l in [(0.0, math.inf), (1e6, 1e6), (5e6, 2e7)]:
+        m = lw.FrequencySeverity(lw.poisson(5.0), sev)
+        got = m.annual(a, l).diagnostics["severity_mean"]
+        assert got == pytest.approx(quad_in_log(sev, a, a + l), rel=1e-11)
+
+
+SEVERITIES = {
+    "lognormal cv 2.5": lw.lognormal(mean=1e6, cv=2.5),
+    "lognormal cv 0.3": lw.lognormal(mean=1e6, cv=0.3),
+    "gamma shape 0.5": lw.gamma(0.5, 2e6),
+    "weibull shape 0.7": lw.weibull(0.7, 1e6),
+    "pareto": lw.pareto(2.5, 1.5e6),
+    "exponential": lw.exponential(1e6),
+}
+
+
+@pytest.mark.parametrize("name", list(SEVERITIES))
+@pytest.mark.parametrize("h,n,a,l", [(2e4, 4096, 0.0, math.inf), (5e3, 2048, 3.275e5, 5e6), (2.5e3, 1024, 1e6, 1e6)])
+def test_discretised_bucket_means_match_quadrature(name, h, n, a, l):
+    """The 'moment' discretisation makes each bucket's survival the bucket mean of S: checked against
+    scipy's quad on the first 200 buckets (where S bends most) and 100 spread over the rest."""
+    sev = SEVERITIES[name]
+    probs, tail = discretise(sev.sf, h, n, a, l)
+    m = n if not math.isfinite(l) else int(round(l / h))
+    sd = 1.0 - np.cumsum(probs)[:m]
+    idx = np.unique(np.concatenate([np.arange(min(m, 200)), np.linspace(0, m - 1, 100).astype(int)]))
+    want = np.array([integrate.quad(lambda x: float(sev.sf(x)), a + k * h, a + (k + 1) * h, epsabs=1e-17,
+                                    epsrel=1e-14, limit=200)[0] / h for k in idx])
+    # Simpson is kept where S barely bends (trapezoid and midpoint within BEND_ABOVE = 1e-9 of each
+    # other); its error there, measured up to 2.3e-12, is what this tolerance allows
+    np.testing.assert_allclose(sd[idx], want, rtol=0, atol=1e-11)
+    # the buckets refined past Boole's rule (Romberg on eighths, or Gauss-Legendre) are held far tighter
+    k = np.arange(m, dtype=float)
+    edges, mids = sev.sf(a + np.arange(m + 1) * h), sev.sf(a + (k + 0.5) * h)
+    simpson = (edges[:-1] + 4 * mids + edges[1:]) / 6
+    quarters = sev.sf(a + (k[:, None] + [0.25, 0.75]) * h)
+    halves = (edges[:-1] + 4 * quarters[:, 0] + 2 * mids + 4 * quarters[:, 1] + edges[1:]) / 12
+    bends = np.abs(0.5 * (edges[:-1] + edges[1:]) - mids) > fourier.BEND_ABOVE
+    refined = np.flatnonzero(bends & (np.abs(halves - simpson) > fourier.REFINE_ABOVE))
+    refined = refined[(refined > 0) & np.isin(refined, idx)]
+    if name.startswith("lognormal cv 2.5") and a == 0.0:
+        assert refined.size > 50  # the path is exercised here
+    at = np.searchsorted(idx, refined)
+    np.testing.assert_allclose(sd[refined], want[at], rtol=0, atol=1e-13)
+
+
+def test_romberg_column_leaves_few_buckets_to_gauss_legendre():
+    """Where Boole's rule is not trusted, one more halving settles almost every bucket of a smooth
+    severity: few are left to the 64-point quadrature (which would give the same numbers, slower)."""
+    sev = lw.lognormal(mean=1e6, cv=2.5)
+    sizes = []
+
+    def counted(x):
+        x = np.asarray(x)
+        sizes.append(x.size)
+        return sev.sf(x)
+
+    discretise(counted, 2e4, 4096)
+    m = 4096
+    # in order: edges, midpoints, quarters of the bent buckets, eighths of those Boole's rule did not
+    # settle, Gauss-Legendre (when any bucket is left), the first bucket on geometric pieces
+    assert sizes[:2] == [m + 1, m] and sizes[-1] == 16 * (len(fourier._GEOMETRIC) - 1)
+    assert len(sizes) in (5, 6)
+    eighths, quadrature = sizes[3], (sizes[4] if len(sizes) == 6 else 0)
+    assert eighths >= 4 * 50  # the eighths were taken on dozens of buckets ...
+    assert quadrature <= 64 * 16  # ... and at most 16 buckets needed Gauss-Legendre

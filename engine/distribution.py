@@ -19,12 +19,13 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass, field
+from typing import NamedTuple
 
 import numpy as np
 
 from .errors import InputError, as_array
 
-__all__ = ["LossDistribution"]
+__all__ = ["LossDistribution", "layer_profiles"]
 
 _IDENTITY = None  # a distortion argument of None means g(s) = s (the expected value)
 QUANTILE_TOL = 1e-12  # probability slack when inverting the cdf, so equal-weight samples hit exact order statistics
@@ -140,111 +141,8 @@ class LossDistribution:
         Summed from the top down, so high layers keep their relative precision.
         """
         x = np.asarray(x, dtype=float)
-        out = self._tail_integrals(x, ((distortion, power),))[0]
+        out = _integrals([(self, x)], ((distortion, power),))[0][0]
         return out if out.ndim else float(out)
-
-    def _tail_integrals(self, x: np.ndarray, specs, *, differences: bool = False) -> list:
-        """One pass over the atoms for several integrands: ``[tail_integral(x, g, p) for g, p in specs]``.
-
-        The sums run over the segments between consecutive query points
-        (``np.add.reduceat``, pairwise and vectorised), and those few partial
-        sums are then accumulated from the top down, so high layers keep their
-        relative precision. Only segments at or above the lowest query point
-        take part, so g is evaluated once per distinct distortion on those
-        atoms alone; beyond ``_BLOCK`` of them they are visited in blocks
-        (each block's edge is one more query point), so no temporary is larger
-        than a block.
-
-        With ``differences`` only differences between the results are wanted
-        (layer integrals): the sums then start at the highest atom any query
-        needs rather than at the top, so atoms above every layer cost
-        nothing, and each result is off by one common constant.
-        """
-        v = self.values
-        n = v.size
-        xf = np.minimum(x.ravel(), v[-1])
-        j = np.searchsorted(v, xf, side="right") - 1  # the segment [v[j], v[j + 1]) holding each point
-        head = j < 0  # below the first atom, where g(S) = g(1) = 1
-        has_head = bool(head.any())
-        j = np.maximum(j, 0)
-        jn = np.minimum(j + 1, n - 1)
-        step = jn > j  # False at the last atom: a zero-width part, whatever g(S) is looked up there
-        # above[k] = integral over [v[k], inf) is needed at jn (and at 0 below the first atom)
-        q_above = np.append(jn, 0) if has_head else jn
-        used = n if not differences else int(q_above.max()) + 1  # atoms 0 .. used - 1 take part
-        k, m = len(specs), xf.size
-        if used < 2:  # a single atom: only the part below it has width
-            above_q, lev_q = np.zeros((k, q_above.size)), np.zeros((k, m))
-        else:
-            above_q, lev_q = self._running_sums(specs, q_above, np.minimum(j, used - 2), used)
-        vjn = v[jn]
-        squared = [t for t, (_, power) in enumerate(specs) if power == 1]
-        widths = np.empty((k, m))
-        widths[:] = vjn - xf
-        if squared:
-            widths[squared] = 0.5 * (vjn**2 - xf**2)  # 0.5 x exact: same bits as before
-        widths *= lev_q
-        out = np.where(step, above_q[:, :m] + widths, 0.0)
-        if has_head:
-            heads = np.empty((k, m))
-            heads[:] = v[0] - xf
-            if squared:
-                heads[squared] = 0.5 * (v[0] ** 2 - xf**2)
-            heads += above_q[:, m : m + 1]
-            out[:, head] = heads[:, head]
-        out[:, x.ravel() >= v[-1]] = 0.0
-        return list(out.reshape((k,) + x.shape))
-
-    def _running_sums(self, specs, q_above, q_lev, used):
-        """For each integrand, the sum over segments s in [q, used - 1) of g(S_s) times the segment's
-        width (or half its change of t**2), at each q in ``q_above``; and g(S) at each index in ``q_lev``.
-        Shapes (len(specs), q_above.size) and (len(specs), q_lev.size)."""
-        v, sf = self.values, self.sf
-        hi = used - 1  # segments 0 .. hi - 1; segment s is [v[s], v[s + 1])
-        lo = int(min(q_above.min(), q_lev.min()))  # no query reads a segment below this one
-        starts = np.unique(q_above[q_above < hi])
-        block = hi - lo if hi - lo <= _BLOCK else min(_BLOCK, max(_MIN_BLOCK, (hi - lo) // 16))
-        edges = np.arange(lo, hi, block)
-        if edges.size > 1 and starts.size:
-            # every block edge above the lowest start is a start too, so no partial sum crosses a block
-            starts = np.union1d(starts, edges[edges > starts[0]])
-        rows: dict = {}
-        for g, _ in specs:
-            rows.setdefault(id(g), g)
-        which = [list(rows).index(id(g)) for g, _ in specs]
-        k = len(specs)
-        sums = np.zeros((k, starts.size))
-        lev_q = np.zeros((k, q_lev.size))
-        for b0 in edges:
-            b1 = min(b0 + block, hi)
-            s = sf[b0:b1]
-            levels = np.empty((len(rows), b1 - b0))
-            interior = s[0] < 1.0 and s[-1] > 0.0  # sf is non-increasing: all of s in (0, 1)
-            for r, g in enumerate(rows.values()):
-                if g is None:
-                    levels[r] = s
-                else:  # a constant g broadcasts; plain functions (no ``inside``) are called as they are
-                    lean = getattr(g, "inside", None) if interior else None
-                    levels[r] = lean(s) if lean is not None else np.asarray(g(s), dtype=float)
-            i0, i1 = np.searchsorted(starts, (b0, b1))
-            if i1 > i0:
-                lv = v[b0 : b1 + 1]
-                width = lv[1:] - lv[:-1]
-                prod = np.empty((k, b1 - b0))
-                for t, (_, power) in enumerate(specs):
-                    np.multiply(levels[which[t]], width if power == 0 else 0.5 * (lv[1:] ** 2 - lv[:-1] ** 2), out=prod[t])
-                sums[:, i0:i1] = np.add.reduceat(prod, starts[i0:i1] - b0, axis=1)
-            inside = (q_lev >= b0) & (q_lev < b1)
-            if edges.size == 1:
-                lev_q = levels[which][:, q_lev - b0]
-            elif inside.any():
-                lev_q[:, inside] = levels[which][:, q_lev[inside] - b0]
-        above = np.cumsum(sums[:, ::-1], axis=1)[:, ::-1]  # above[:, i]: from starts[i] to the top
-        above_q = np.zeros((k, q_above.size))
-        if starts.size:
-            read = q_above < hi
-            above_q[:, read] = above[:, np.searchsorted(starts, q_above[read])]
-        return above_q, lev_q
 
     def layer_integral(self, attachment, limit, distortion=None) -> np.ndarray:
         """integral over [a, a + l] of g(S(x)) dx: the distorted price of the layer (a, l).
@@ -264,31 +162,10 @@ class LossDistribution:
         Each entry is exactly what :meth:`layer_integral` and
         :meth:`layer_second_moment` return for the same arguments; the second
         moment is None when ``second_moment`` is False. Shapes broadcast as in
-        :meth:`layer_integral`.
+        :meth:`layer_integral`. :func:`layer_profiles` does the same for
+        several distributions at once.
         """
-        a = np.asarray(attachment, dtype=float)
-        top = a + np.asarray(limit, dtype=float)
-        if a.shape != top.shape:
-            a, top = np.broadcast_arrays(a, top)
-        shape = a.shape
-        specs = [(None, 0)] + ([(None, 1)] if second_moment else []) + [(g, 0) for g in distortions if g is not None]
-        xs = np.concatenate([a.ravel(), top.ravel()])
-        res = self._tail_integrals(xs, specs, differences=True)
-        m = a.size
-
-        def diff(r):
-            out = (r[:m] - r[m:]).reshape(shape)
-            return out if out.ndim else float(out)
-
-        first = diff(res[0])
-        sm = None
-        if second_moment:
-            second = diff(res[1])
-            sm = np.maximum(2.0 * (second - a * first), 0.0)
-            sm = sm if sm.ndim else float(sm)
-        rest = iter(res[2 if second_moment else 1 :])
-        prices = [first if g is None else diff(next(rest)) for g in distortions]
-        return first, sm, prices
+        return layer_profiles([(self, attachment, limit)], distortions, second_moment=second_moment)[0]
 
     # ----------------------------------------------------------------- whole-variable statistics
     def mean(self) -> float:
@@ -343,14 +220,227 @@ class LossDistribution:
         t = a + np.asarray(limit, dtype=float)
         if self.beyond <= 0:
             return np.zeros(np.broadcast(a, t).shape)
-        gb = self.beyond if distortion is None else float(distortion(self.beyond))
         overlap = np.maximum(t - np.maximum(a, self.top), 0.0)
+        reach = overlap > 0
+        if not reach.any():  # every layer ends at or below the top (the usual case): g is not needed
+            return np.zeros(overlap.shape)
+        gb = self.beyond if distortion is None else float(distortion(self.beyond))
         with np.errstate(invalid="ignore"):
-            return np.where(overlap > 0, gb * overlap, 0.0)
+            return np.where(reach, gb * overlap, 0.0)
 
     def __repr__(self):
         extra = f", beyond={self.beyond:.3g} at {self.top:.6g}" if self.beyond > 0 else ""
         return f"LossDistribution({self.size} atoms on [{self.values[0]:.6g}, {self.values[-1]:.6g}], mean={self.mean():.6g}{extra})"
+
+
+def layer_profiles(items, distortions=(), *, second_moment: bool = True) -> list:
+    """``[d.layer_profile(a, l, distortions, second_moment=second_moment) for d, a, l in items]``.
+
+    The same numbers, bit for bit, from passes shared by all the items (one
+    call of each distortion per pass rather than per distribution): the way
+    to price the layers of several distributions, e.g. a tower's
+    per-occurrence layers and their error-estimate grids.
+    """
+    prepared = []
+    for d, attachment, limit in items:
+        a = np.asarray(attachment, dtype=float)
+        top = a + np.asarray(limit, dtype=float)
+        if a.shape != top.shape:
+            a, top = np.broadcast_arrays(a, top)
+        prepared.append((d, a, np.concatenate([a.ravel(), top.ravel()])))
+    specs = [(None, 0)] + ([(None, 1)] if second_moment else []) + [(g, 0) for g in distortions if g is not None]
+    results = _integrals([(d, xs) for d, _, xs in prepared], specs, differences=True)
+    out = []
+    for (_, a, _), res in zip(prepared, results):
+        m, shape = a.size, a.shape
+
+        def diff(r):
+            dr = (r[:m] - r[m:]).reshape(shape)
+            return dr if dr.ndim else float(dr)
+
+        first = diff(res[0])
+        sm = None
+        if second_moment:
+            second = diff(res[1])
+            sm = np.maximum(2.0 * (second - a * first), 0.0)
+            sm = sm if sm.ndim else float(sm)
+        rest = iter(res[2 if second_moment else 1 :])
+        out.append((first, sm, [first if g is None else diff(next(rest)) for g in distortions]))
+    return out
+
+
+class _Query(NamedTuple):
+    """Where the points ``x`` of one integral pass fall among a distribution's atoms (see :func:`_integrals`)."""
+
+    dist: "LossDistribution"
+    x: np.ndarray  # the points as given
+    xf: np.ndarray  # flattened, capped at the last atom
+    j: np.ndarray  # segment [v[j], v[j + 1]) holding each point (0 below the first atom)
+    jn: np.ndarray  # j + 1, capped at the last atom
+    head: np.ndarray | None  # points below the first atom (None when there are none)
+    q_above: np.ndarray  # atoms k at which the integral over [v[k], inf) is needed
+    used: int  # atoms 0 .. used - 1 take part
+
+
+def _query(dist: "LossDistribution", x: np.ndarray, differences: bool) -> _Query:
+    v = dist.values
+    n = v.size
+    xf = np.minimum(x.ravel(), v[-1])
+    j = np.searchsorted(v, xf, side="right") - 1
+    head = j < 0  # below the first atom, where g(S) = g(1) = 1
+    has_head = bool(head.any())
+    j = np.maximum(j, 0)
+    jn = np.minimum(j + 1, n - 1)
+    q_above = np.append(jn, 0) if has_head else jn
+    used = n if not differences else int(q_above.max()) + 1
+    return _Query(dist, x, xf, j, jn, head if has_head else None, q_above, used)
+
+
+def _integrals(items, specs, *, differences: bool = False) -> list:
+    """For each (distribution, points x) in ``items``: ``[tail_integral(x, g, p) for g, p in specs]``.
+
+    The sums run over the segments between consecutive query points
+    (``np.add.reduceat``, pairwise and vectorised), and those few partial sums
+    are then accumulated from the top down, so high layers keep their relative
+    precision. Only segments at or above an item's lowest query point take
+    part, and the segments of all items are visited together, so g is
+    evaluated once per distinct distortion and pass on those atoms alone;
+    passes hold at most ``_BLOCK`` atoms (a longer item is cut into blocks,
+    each block's edge one more query point), so no temporary is larger than a
+    block. The results do not depend on which items share a pass.
+
+    With ``differences`` only differences between the results are wanted
+    (layer integrals): the sums then start at the highest atom any query
+    needs rather than at the top, so atoms above every layer cost nothing,
+    and each result is off by one common constant.
+    """
+    queries = [_query(d, x, differences) for d, x in items]
+    k = len(specs)
+    summed = _running_sums([q for q in queries if q.used >= 2], specs)
+    out = []
+    for q in queries:
+        m = q.xf.size
+        if q.used < 2:  # a single atom: only the part below it has width
+            above_q, lev_q = np.zeros((k, q.q_above.size)), np.zeros((k, m))
+        else:
+            above_q, lev_q = summed.pop(0)
+        v, xf = q.dist.values, q.xf
+        vjn = v[q.jn]
+        squared = [t for t, (_, power) in enumerate(specs) if power == 1]
+        widths = np.empty((k, m))
+        widths[:] = vjn - xf
+        if squared:
+            widths[squared] = 0.5 * (vjn**2 - xf**2)  # 0.5 x exact: same bits as before
+        widths *= lev_q
+        # the step is False at the last atom: a zero-width part, whatever g(S) is looked up there
+        res = np.where(q.jn > q.j, above_q[:, :m] + widths, 0.0)
+        if q.head is not None:
+            heads = np.empty((k, m))
+            heads[:] = v[0] - xf
+            if squared:
+                heads[squared] = 0.5 * (v[0] ** 2 - xf**2)
+            heads += above_q[:, m : m + 1]
+            res[:, q.head] = heads[:, q.head]
+        res[:, q.x.ravel() >= v[-1]] = 0.0
+        out.append(list(res.reshape((k,) + q.x.shape)))
+    return out
+
+
+def _running_sums(queries, specs) -> list:
+    """For each query (``used`` >= 2) and integrand: the sum over segments s in [q, used - 1) of g(S_s)
+    times the segment's width (or half its change of t**2) at each q in ``q_above``, and g(S) at each
+    index in ``min(j, used - 2)``; as a list of arrays of shapes (len(specs), q_above.size) and
+    (len(specs), j.size), one pair per query."""
+    # cut every query's range of segments into chunks (b0, b1) with their start points
+    chunks = []  # (query index, b0, b1, starts in [b0, b1), lev indices in [b0, b1), their positions)
+    starts_of = []
+    for i, q in enumerate(queries):
+        hi = q.used - 1  # segments 0 .. hi - 1; segment s is [v[s], v[s + 1])
+        q_lev = np.minimum(q.j, q.used - 2)
+        lo = int(min(q.q_above.min(), q_lev.min()))  # no query reads a segment below this one
+        starts = np.unique(q.q_above[q.q_above < hi])
+        if hi - lo <= _BLOCK:
+            edges, block = [lo], hi - lo
+        else:
+            block = min(_BLOCK, max(_MIN_BLOCK, (hi - lo) // 16))
+            edges = list(range(lo, hi, block))
+            if starts.size:  # every block edge above the lowest start is a start too: no sum crosses a block
+                starts = np.union1d(starts, [e for e in edges if e > starts[0]])
+        starts_of.append(starts)
+        for b0 in edges:
+            b1 = min(b0 + block, hi)
+            s0, s1 = np.searchsorted(starts, [b0, b1])
+            at = np.flatnonzero((q_lev >= b0) & (q_lev < b1)) if len(edges) > 1 else slice(None)
+            chunks.append((i, b0, b1, starts[s0:s1], q_lev[at], at))
+    rows: dict = {}
+    for g, _ in specs:
+        rows.setdefault(id(g), g)
+    which = [list(rows).index(id(g)) for g, _ in specs]
+    squared = any(power == 1 for _, power in specs)
+    k = len(specs)
+    sums = [[] for _ in queries]  # per query, its chunks' sums in ascending order
+    lev_q = [np.zeros((k, q.j.size)) for q in queries]
+    # passes of whole chunks, at most _BLOCK segments each (a chunk is never longer)
+    group, size = [], 0
+    for c in chunks + [None]:
+        if c is not None and (not group or size + (c[2] - c[1]) <= _BLOCK):
+            group.append(c)
+            size += c[2] - c[1]
+            continue
+        if group:
+            _pass(group, queries, rows, which, specs, squared, sums, lev_q)
+        group, size = ([c], c[2] - c[1]) if c is not None else ([], 0)
+    out = []
+    for i, q in enumerate(queries):
+        starts = starts_of[i]
+        above_q = np.zeros((k, q.q_above.size))
+        if starts.size:
+            per = np.concatenate(sums[i], axis=1)
+            above = np.cumsum(per[:, ::-1], axis=1)[:, ::-1]  # above[:, i]: from starts[i] to the top
+            read = q.q_above < q.used - 1
+            above_q[:, read] = above[:, np.searchsorted(starts, q.q_above[read])]
+        out.append((above_q, lev_q[i]))
+    return out
+
+
+def _pass(group, queries, rows, which, specs, squared, sums, lev_q):
+    """One pass over the segments of the chunks in ``group``: g on their survival levels, the products
+    with the widths, and their sums between start points (see :func:`_running_sums`)."""
+    sfs, widths, squares, offsets, marks = [], [], [], [], []
+    at = 0
+    for i, b0, b1, starts, _, _ in group:
+        d = queries[i].dist
+        lv = d.values[b0 : b1 + 1]
+        sfs.append(d.sf[b0:b1])
+        widths.append(lv[1:] - lv[:-1])
+        if squared:
+            squares.append(0.5 * (lv[1:] ** 2 - lv[:-1] ** 2))
+        offsets.append(at)
+        marks.append(starts - b0 + at)
+        at += b1 - b0
+        marks.append([at])  # the chunk's end: no sum runs on into the next chunk
+    s = np.concatenate(sfs) if len(sfs) > 1 else sfs[0]
+    width = np.concatenate(widths) if len(widths) > 1 else widths[0]
+    square = (np.concatenate(squares) if len(squares) > 1 else squares[0]) if squared else None
+    levels = np.empty((len(rows), at))
+    interior = all(x[0] < 1.0 and x[-1] > 0.0 for x in sfs)  # each piece non-increasing: all of s in (0, 1)
+    for r, g in enumerate(rows.values()):
+        if g is None:
+            levels[r] = s
+        else:  # a constant g broadcasts; plain functions (no ``inside``) are called as they are
+            lean = getattr(g, "inside", None) if interior else None
+            levels[r] = lean(s) if lean is not None else np.asarray(g(s), dtype=float)
+    prod = np.empty((len(specs), at))
+    for t, (_, power) in enumerate(specs):
+        np.multiply(levels[which[t]], width if power == 0 else square, out=prod[t])
+    marks = np.unique(np.concatenate(marks))
+    marks = marks[marks < at]
+    total = np.add.reduceat(prod, marks, axis=1) if marks.size else np.zeros((len(specs), 0))
+    lev = levels[which]
+    for (i, b0, _, starts, q_lev, pos), off in zip(group, offsets):
+        if starts.size:
+            sums[i].append(total[:, np.searchsorted(marks, starts - b0 + off)])
+        lev_q[i][:, pos] = lev[:, q_lev - b0 + off]
 
 
 def _empirical(x: np.ndarray):

@@ -646,10 +646,13 @@ _DIAGNOSTIC_KEYS = (
 
 
 def _mean_to_top(sev: Severity, a: float, l: float, top: float) -> float:
-    """E[min(max(X - a, 0), l, top)] by quadrature: what the grid's severity mean must match,
-    whatever lies beyond the grid top."""
+    """E[min(max(X - a, 0), l, top)] (closed form where the severity has one, else quadrature): what the
+    grid's severity mean must match, whatever lies beyond the grid top."""
     if l <= top:
         return _integrate_sf(sev, a, a + l)
+    closed = _closed_layer_mean(sev, a, min(a + top, sev.upper))
+    if closed is not None:
+        return closed
     q = float(sev.ppf(0.01))
     first = max(q * 1e-3, 1e-300) if math.isfinite(q) and q > a else max(abs(a), 1.0) * 1e-9
     return integral(sev.sf, a, min(a + min(l, top), sev.upper), first=first)
@@ -779,12 +782,21 @@ def _count_quantile(freq: Frequency, q: float, reach: float = 1.0) -> float:
     return float(freq.ppf(q)) if reach >= 1.0 else freq.thinned_ppf(q, reach)
 
 
+def _closed_layer_mean(sev: Severity, a: float, b: float) -> float | None:
+    """integral_a^b S(x) dx in closed form when the severity has one (None otherwise, or for a layer so
+    narrow that the closed form's difference of terms would lose digits)."""
+    closed = getattr(sev.fast_sf, "layer_mean", None)
+    if closed is None or not b - a >= 1e-2 * b:
+        return None
+    return closed(a, b)
+
+
 def _integrate_sf(sev: Severity, a: float, b: float, weight_from: float | None = None) -> float:
     """integral_a^b S(x) dx, or integral_a^b (x - weight_from) S(x) dx; inf when it diverges."""
     if weight_from is None:
-        closed = getattr(sev.fast_sf, "layer_mean", None)
-        if closed is not None and b - a >= 1e-2 * b:  # a narrower layer would lose digits to cancellation
-            return closed(a, b)
+        closed = _closed_layer_mean(sev, a, b)
+        if closed is not None:
+            return closed
         if not math.isfinite(b):
             # E[(X - a)+] = E[X] - E[min(X, a)]
             mean = sev.mean

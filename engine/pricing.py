@@ -44,6 +44,7 @@ import numpy as np
 import pandas as pd
 
 from .distortions import Distortion, TVaRDistortion
+from .distribution import layer_profiles
 from .errors import GridWarning, InputError
 from .layers import Layer
 from .models import LossModel
@@ -139,13 +140,21 @@ def price_layers(model: LossModel, layers, distortion) -> pd.DataFrame:
     el = np.empty(k); sd = np.empty(k); pa = np.empty(k); pe = np.empty(k)
     prem = np.empty((d, k)); err = np.empty((d, k)); disc = np.zeros((d, k))
     mean_note = [""] * k
+    groups = []
     for (oa, ol), idx in _groups(lays).items():
         a = np.array([lays[i].agg_attachment for i in idx])
         lim = np.array([lays[i].agg_limit for i in idx])
         below = float(np.max(a + lim))  # nothing above the highest exhaustion point is read
         u = model.annual(oa, ol, below=below)
+        # right after the fine one, while the model still holds its discretised severity
+        coarse = model.annual_coarse(oa, ol, below=below)
+        groups.append((oa, ol, idx, a, lim, u, coarse))
+    # every group's layers, and their error-estimate twins, in shared passes
+    fine = layer_profiles([(u, a, lim) for _, _, _, a, lim, u, _ in groups], gs)
+    twins = iter(layer_profiles([(c, a, lim) for _, _, _, a, lim, _, c in groups if c is not None], gs,
+                                second_moment=False))
+    for (oa, ol, idx, a, lim, u, coarse), (e, second, prices) in zip(groups, fine):
         share = np.array([lays[i].share for i in idx])
-        e, second, prices = u.layer_profile(a, lim, gs)
         el[idx] = share * e
         sd[idx] = share * np.sqrt(np.maximum(second - e * e, 0.0))
         pa[idx] = u.survival(a)
@@ -155,9 +164,8 @@ def price_layers(model: LossModel, layers, distortion) -> pd.DataFrame:
         for t, g in enumerate(gs):
             prem[t, idx] = share * prices[t]
             err[t, idx] = share * np.maximum(_beyond(model, u, oa, ol, a, lim, g), plain)
-        coarse = model.annual_coarse(oa, ol, below=below)
         if coarse is not None:
-            ec, _, pc = coarse.layer_profile(a, lim, gs, second_moment=False)
+            ec, _, pc = next(twins)
             with np.errstate(invalid="ignore"):
                 de = np.abs(np.asarray(e) - ec)
                 for t in range(d):

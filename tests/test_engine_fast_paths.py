@@ -138,8 +138,10 @@ def test_model_diagnostics_use_the_closed_form_and_agree_with_quadrature():
     sev = lw.lognormal(mean=1e6, cv=2.5)
     for a, l in [(0.0, math.inf), (1e6, 1e6), (5e6, 2e7)]:
         m = lw.FrequencySeverity(lw.poisson(5.0), sev)
-        got = m.annual(a, l).diagnostics["severity_mean"]
-        assert got == pytest.approx(quad_in_log(sev, a, a + l), rel=1e-11)
+        diag = m.annual(a, l).diagnostics
+        assert diag["severity_mean"] == pytest.approx(quad_in_log(sev, a, a + l), rel=1e-11)
+        top = diag["grid_top"]
+        assert diag["severity_mean_to_top"] == pytest.approx(quad_in_log(sev, a, a + min(l, top)), rel=1e-11)
 
 
 SEVERITIES = {
@@ -202,3 +204,27 @@ def test_romberg_column_leaves_few_buckets_to_gauss_legendre():
     eighths, quadrature = sizes[3], (sizes[4] if len(sizes) == 6 else 0)
     assert eighths >= 4 * 50  # the eighths were taken on dozens of buckets ...
     assert quadrature <= 64 * 16  # ... and at most 16 buckets needed Gauss-Legendre
+
+
+@pytest.mark.parametrize("block", [None, 700])
+def test_shared_passes_give_each_distribution_its_own_numbers(monkeypatch, block):
+    """layer_profiles over several distributions (one of them a single atom, one longer than a pass)
+    returns what each distribution's own layer_profile returns, bit for bit, whichever share a pass."""
+    if block is not None:
+        monkeypatch.setattr(distribution, "_BLOCK", block)
+        monkeypatch.setattr(distribution, "_MIN_BLOCK", block // 4)
+    rng = np.random.default_rng(11)
+    dists = [random_distribution(rng, n, z) for n, z in [(300, True), (1, False), (2_500, False), (40, True), (9_000, True)]]
+    items = []
+    for d in dists:
+        a = rng.uniform(0.0, d.max, 3)
+        items.append((d, a, rng.choice([1.0, 8.0, math.inf], 3)))
+    shared = distribution.layer_profiles(items, GS)
+    for (d, a, lim), (e, second, prices) in zip(items, shared):
+        alone = d.layer_profile(a, lim, GS)
+        np.testing.assert_array_equal(e, alone[0])
+        np.testing.assert_array_equal(second, alone[1])
+        for p, q in zip(prices, alone[2]):
+            np.testing.assert_array_equal(p, q)
+        for k in range(a.size):  # and they are the right numbers
+            assert prices[0][k] == pytest.approx(exact_layer(d, a[k], lim[k], GS[0]), rel=1e-13, abs=1e-14 * d.max)

@@ -352,26 +352,26 @@ def _running_sums(queries, specs) -> list:
     index in ``min(j, used - 2)``; as a list of arrays of shapes (len(specs), q_above.size) and
     (len(specs), j.size), one pair per query."""
     # cut every query's range of segments into chunks (b0, b1) with their start points
-    chunks = []  # (query index, b0, b1, starts in [b0, b1), lev indices in [b0, b1), their positions)
+    chunks = []  # (query index, b0, b1, starts in [b0, b1), lev indices in [b0, b1), their positions, from blocks)
     starts_of = []
     for i, q in enumerate(queries):
         hi = q.used - 1  # segments 0 .. hi - 1; segment s is [v[s], v[s + 1])
         q_lev = np.minimum(q.j, q.used - 2)
         lo = int(min(q.q_above.min(), q_lev.min()))  # no query reads a segment below this one
         starts = np.unique(q.q_above[q.q_above < hi])
-        if hi - lo <= _BLOCK:
+        if q.used <= _BLOCK + 1:
             edges, block = [lo], hi - lo
-        else:
-            block = min(_BLOCK, max(_MIN_BLOCK, (hi - lo) // 16))
+        else:  # a long distribution (a large sample): blocks of 1/16 of it, so temporaries stay well below its size
+            block = min(_BLOCK, max(_MIN_BLOCK, q.used // 16))
             edges = list(range(lo, hi, block))
             if starts.size:  # every block edge above the lowest start is a start too: no sum crosses a block
-                starts = np.union1d(starts, [e for e in edges if e > starts[0]])
+                starts = np.union1d(starts, np.array([e for e in edges if e > starts[0]], dtype=starts.dtype))
         starts_of.append(starts)
         for b0 in edges:
             b1 = min(b0 + block, hi)
             s0, s1 = np.searchsorted(starts, [b0, b1])
             at = np.flatnonzero((q_lev >= b0) & (q_lev < b1)) if len(edges) > 1 else slice(None)
-            chunks.append((i, b0, b1, starts[s0:s1], q_lev[at], at))
+            chunks.append((i, b0, b1, starts[s0:s1], q_lev[at], at, len(edges) > 1))
     rows: dict = {}
     for g, _ in specs:
         rows.setdefault(id(g), g)
@@ -380,16 +380,19 @@ def _running_sums(queries, specs) -> list:
     k = len(specs)
     sums = [[] for _ in queries]  # per query, its chunks' sums in ascending order
     lev_q = [np.zeros((k, q.j.size)) for q in queries]
-    # passes of whole chunks, at most _BLOCK segments each (a chunk is never longer)
+    # passes of whole short items, at most _BLOCK segments each; a block of a long item passes alone,
+    # so its temporaries stay about the size of the block (1/16 of the item for the longest)
     group, size = [], 0
     for c in chunks + [None]:
-        if c is not None and (not group or size + (c[2] - c[1]) <= _BLOCK):
+        if c is not None and not c[6] and (not group or size + (c[2] - c[1]) <= _BLOCK):
             group.append(c)
             size += c[2] - c[1]
             continue
         if group:
             _pass(group, queries, rows, which, specs, squared, sums, lev_q)
-        group, size = ([c], c[2] - c[1]) if c is not None else ([], 0)
+        group, size = ([], 0) if c is None else ([c], c[2] - c[1]) if not c[6] else ([], 0)
+        if c is not None and c[6]:
+            _pass([c], queries, rows, which, specs, squared, sums, lev_q)
     out = []
     for i, q in enumerate(queries):
         starts = starts_of[i]
@@ -408,7 +411,7 @@ def _pass(group, queries, rows, which, specs, squared, sums, lev_q):
     with the widths, and their sums between start points (see :func:`_running_sums`)."""
     sfs, widths, squares, offsets, marks = [], [], [], [], []
     at = 0
-    for i, b0, b1, starts, _, _ in group:
+    for i, b0, b1, starts, _, _, _ in group:
         d = queries[i].dist
         lv = d.values[b0 : b1 + 1]
         sfs.append(d.sf[b0:b1])
@@ -430,17 +433,18 @@ def _pass(group, queries, rows, which, specs, squared, sums, lev_q):
         else:  # a constant g broadcasts; plain functions (no ``inside``) are called as they are
             lean = getattr(g, "inside", None) if interior else None
             levels[r] = lean(s) if lean is not None else np.asarray(g(s), dtype=float)
-    prod = np.empty((len(specs), at))
-    for t, (_, power) in enumerate(specs):
-        np.multiply(levels[which[t]], width if power == 0 else square, out=prod[t])
-    marks = np.unique(np.concatenate(marks))
+    marks = np.unique(np.concatenate(marks).astype(np.intp, copy=False))
     marks = marks[marks < at]
-    total = np.add.reduceat(prod, marks, axis=1) if marks.size else np.zeros((len(specs), 0))
-    lev = levels[which]
-    for (i, b0, _, starts, q_lev, pos), off in zip(group, offsets):
+    total = np.zeros((len(specs), marks.size))
+    if marks.size:
+        term = np.empty(at)  # one integrand's terms at a time: temporaries of a few rows of the pass
+        for t, (_, power) in enumerate(specs):
+            np.multiply(levels[which[t]], width if power == 0 else square, out=term)
+            total[t] = np.add.reduceat(term, marks)
+    for (i, b0, _, starts, q_lev, pos, _), off in zip(group, offsets):
         if starts.size:
             sums[i].append(total[:, np.searchsorted(marks, starts - b0 + off)])
-        lev_q[i][:, pos] = lev[:, q_lev - b0 + off]
+        lev_q[i][:, pos] = levels[:, q_lev - b0 + off][which]
 
 
 def _empirical(x: np.ndarray):

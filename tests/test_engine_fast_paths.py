@@ -228,3 +228,17 @@ def test_shared_passes_give_each_distribution_its_own_numbers(monkeypatch, block
             np.testing.assert_array_equal(p, q)
         for k in range(a.size):  # and they are the right numbers
             assert prices[0][k] == pytest.approx(exact_layer(d, a[k], lim[k], GS[0]), rel=1e-13, abs=1e-14 * d.max)
+
+
+def test_long_distribution_queried_only_near_its_top():
+    """A distribution longer than a pass, with every query in its last block (no block edge above the
+    lowest query): the same exactly rounded sums."""
+    rng = np.random.default_rng(5)
+    d = random_distribution(rng, 3 * distribution._BLOCK, False)
+    v = d.values
+    x = np.array([0.5 * (v[-7] + v[-6]), v[-3]])  # inside the last atoms' segments
+    for g in [None] + GS:
+        np.testing.assert_allclose(d.tail_integral(x, g), [exact_layer(d, xi, math.inf, g) for xi in x], rtol=1e-13)
+    width = v[-2] - x[0]
+    e, _, prices = d.layer_profile(x[:1], [width], GS)
+    assert prices[1] == pytest.approx(exact_layer(d, x[0], width, GS[1]), rel=1e-13)

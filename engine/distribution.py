@@ -19,7 +19,6 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass, field
-from typing import NamedTuple
 
 import numpy as np
 
@@ -29,7 +28,7 @@ __all__ = ["LossDistribution", "layer_profiles"]
 
 _IDENTITY = None  # a distortion argument of None means g(s) = s (the expected value)
 QUANTILE_TOL = 1e-12  # probability slack when inverting the cdf, so equal-weight samples hit exact order statistics
-_BLOCK = 1 << 16  # atoms per block in the top-down integral pass: bounds its temporaries and keeps them in cache
+_BLOCK = 1 << 16  # atoms per integral pass: bounds its temporaries and keeps them in cache
 _MIN_BLOCK = 1 << 13  # smallest block of a distribution too large for one block (about 1/16 of it is used)
 
 
@@ -138,10 +137,10 @@ class LossDistribution:
     def tail_integral(self, x, distortion=None, power: int = 0) -> np.ndarray:
         """integral_x^inf t**power * g(S(t)) dt (power 0 or 1), vectorised over ``x`` >= 0.
 
-        Summed from the top down, so high layers keep their relative precision.
+        Each is a direct sum over its own segments, so high layers keep their relative precision.
         """
         x = np.asarray(x, dtype=float)
-        out = _integrals([(self, x)], ((distortion, power),))[0][0]
+        out = _integrals([(self, x, np.full(x.shape, math.inf))], ((distortion, power),))[0][0]
         return out if out.ndim else float(out)
 
     def layer_integral(self, attachment, limit, distortion=None) -> np.ndarray:
@@ -241,190 +240,133 @@ def layer_profiles(items, distortions=(), *, second_moment: bool = True) -> list
     to price the layers of several distributions, e.g. a tower's
     per-occurrence layers and their error-estimate grids.
     """
-    prepared = []
+    spans = []
     for d, attachment, limit in items:
         a = np.asarray(attachment, dtype=float)
-        top = a + np.asarray(limit, dtype=float)
-        if a.shape != top.shape:
-            a, top = np.broadcast_arrays(a, top)
-        prepared.append((d, a, np.concatenate([a.ravel(), top.ravel()])))
+        b = a + np.asarray(limit, dtype=float)
+        if a.shape != b.shape:
+            a, b = np.broadcast_arrays(a, b)
+        spans.append((d, a, b))
     specs = [(None, 0)] + ([(None, 1)] if second_moment else []) + [(g, 0) for g in distortions if g is not None]
-    results = _integrals([(d, xs) for d, _, xs in prepared], specs, differences=True)
     out = []
-    for (_, a, _), res in zip(prepared, results):
-        m, shape = a.size, a.shape
-
-        def diff(r):
-            dr = (r[:m] - r[m:]).reshape(shape)
-            return dr if dr.ndim else float(dr)
-
-        first = diff(res[0])
+    for (_, a, _), res in zip(spans, _integrals(spans, specs)):
+        first = res[0]
         sm = None
         if second_moment:
-            second = diff(res[1])
-            sm = np.maximum(2.0 * (second - a * first), 0.0)
-            sm = sm if sm.ndim else float(sm)
+            sm = _scalar(np.maximum(2.0 * (res[1] - a * first), 0.0))
         rest = iter(res[2 if second_moment else 1 :])
-        out.append((first, sm, [first if g is None else diff(next(rest)) for g in distortions]))
+        first = _scalar(first)
+        out.append((first, sm, [first if g is None else _scalar(next(rest)) for g in distortions]))
     return out
 
 
-class _Query(NamedTuple):
-    """Where the points ``x`` of one integral pass fall among a distribution's atoms (see :func:`_integrals`)."""
-
-    dist: "LossDistribution"
-    x: np.ndarray  # the points as given
-    xf: np.ndarray  # flattened, capped at the last atom
-    j: np.ndarray  # segment [v[j], v[j + 1]) holding each point (0 below the first atom)
-    jn: np.ndarray  # j + 1, capped at the last atom
-    head: np.ndarray | None  # points below the first atom (None when there are none)
-    q_above: np.ndarray  # atoms k at which the integral over [v[k], inf) is needed
-    used: int  # atoms 0 .. used - 1 take part
+def _scalar(x: np.ndarray):
+    return x if x.ndim else float(x)
 
 
-def _query(dist: "LossDistribution", x: np.ndarray, differences: bool) -> _Query:
-    v = dist.values
-    n = v.size
-    xf = np.minimum(x.ravel(), v[-1])
-    j = np.searchsorted(v, xf, side="right") - 1
-    head = j < 0  # below the first atom, where g(S) = g(1) = 1
-    has_head = bool(head.any())
-    j = np.maximum(j, 0)
-    jn = np.minimum(j + 1, n - 1)
-    q_above = np.append(jn, 0) if has_head else jn
-    used = n if not differences else int(q_above.max()) + 1
-    return _Query(dist, x, xf, j, jn, head if has_head else None, q_above, used)
+def _integrals(items, specs) -> list:
+    """For each (distribution, lo, hi) in ``items`` (arrays of one shape; hi may be inf), the integrals
+    over [lo, hi] of t**p g(S(t)), one array per (g, p) in ``specs``.
 
-
-def _integrals(items, specs, *, differences: bool = False) -> list:
-    """For each (distribution, points x) in ``items``: ``[tail_integral(x, g, p) for g, p in specs]``.
-
-    The sums run over the segments between consecutive query points
-    (``np.add.reduceat``, pairwise and vectorised), and those few partial sums
-    are then accumulated from the top down, so high layers keep their relative
-    precision. Only segments at or above an item's lowest query point take
-    part, and the segments of all items are visited together, so g is
-    evaluated once per distinct distortion and pass on those atoms alone;
-    passes hold at most ``_BLOCK`` atoms (a longer item is cut into blocks,
-    each block's edge one more query point), so no temporary is larger than a
-    block. The results do not depend on which items share a pass.
-
-    With ``differences`` only differences between the results are wanted
-    (layer integrals): the sums then start at the highest atom any query
-    needs rather than at the top, so atoms above every layer cost nothing,
-    and each result is off by one common constant.
+    S is 1 below the first atom and sf[i] on [values[i], values[i + 1]). Each
+    integral is its two partial segments plus the sum over the whole segments
+    between them, taken directly (``np.add.reduceat`` on pairs of indices:
+    pairwise, vectorised, no differences of running sums, so a remote layer
+    keeps its relative precision). g is evaluated once per distinct
+    distortion and pass, on the atoms from an item's lowest bound to its
+    highest alone; a pass holds several short items, up to ``_BLOCK`` atoms,
+    while an item longer than that (a large sample) is cut into blocks of
+    1/16 of its length that pass one at a time, so temporaries stay well below
+    its size. An item's numbers do not depend on which items share its pass.
     """
-    queries = [_query(d, x, differences) for d, x in items]
-    k = len(specs)
-    summed = _running_sums([q for q in queries if q.used >= 2], specs)
-    out = []
-    for q in queries:
-        m = q.xf.size
-        if q.used < 2:  # a single atom: only the part below it has width
-            above_q, lev_q = np.zeros((k, q.q_above.size)), np.zeros((k, m))
-        else:
-            above_q, lev_q = summed.pop(0)
-        v, xf = q.dist.values, q.xf
-        vjn = v[q.jn]
-        squared = [t for t, (_, power) in enumerate(specs) if power == 1]
-        widths = np.empty((k, m))
-        widths[:] = vjn - xf
-        if squared:
-            widths[squared] = 0.5 * (vjn**2 - xf**2)  # 0.5 x exact: same bits as before
-        widths *= lev_q
-        # the step is False at the last atom: a zero-width part, whatever g(S) is looked up there
-        res = np.where(q.jn > q.j, above_q[:, :m] + widths, 0.0)
-        if q.head is not None:
-            heads = np.empty((k, m))
-            heads[:] = v[0] - xf
-            if squared:
-                heads[squared] = 0.5 * (v[0] ** 2 - xf**2)
-            heads += above_q[:, m : m + 1]
-            res[:, q.head] = heads[:, q.head]
-        res[:, q.x.ravel() >= v[-1]] = 0.0
-        out.append(list(res.reshape((k,) + q.x.shape)))
-    return out
-
-
-def _running_sums(queries, specs) -> list:
-    """For each query (``used`` >= 2) and integrand: the sum over segments s in [q, used - 1) of g(S_s)
-    times the segment's width (or half its change of t**2) at each q in ``q_above``, and g(S) at each
-    index in ``min(j, used - 2)``; as a list of arrays of shapes (len(specs), q_above.size) and
-    (len(specs), j.size), one pair per query."""
-    # cut every query's range of segments into chunks (b0, b1) with their start points
-    chunks = []  # (query index, b0, b1, starts in [b0, b1), lev indices in [b0, b1), their positions, from blocks)
-    starts_of = []
-    for i, q in enumerate(queries):
-        hi = q.used - 1  # segments 0 .. hi - 1; segment s is [v[s], v[s + 1])
-        q_lev = np.minimum(q.j, q.used - 2)
-        lo = int(min(q.q_above.min(), q_lev.min()))  # no query reads a segment below this one
-        starts = np.unique(q.q_above[q.q_above < hi])
-        if q.used <= _BLOCK + 1:
-            edges, block = [lo], hi - lo
-        else:  # a long distribution (a large sample): blocks of 1/16 of it, so temporaries stay well below its size
-            block = min(_BLOCK, max(_MIN_BLOCK, q.used // 16))
-            edges = list(range(lo, hi, block))
-            if starts.size:  # every block edge above the lowest start is a start too: no sum crosses a block
-                starts = np.union1d(starts, np.array([e for e in edges if e > starts[0]], dtype=starts.dtype))
-        starts_of.append(starts)
-        for b0 in edges:
-            b1 = min(b0 + block, hi)
-            s0, s1 = np.searchsorted(starts, [b0, b1])
-            at = np.flatnonzero((q_lev >= b0) & (q_lev < b1)) if len(edges) > 1 else slice(None)
-            chunks.append((i, b0, b1, starts[s0:s1], q_lev[at], at, len(edges) > 1))
+    if not items:
+        return []
     rows: dict = {}
     for g, _ in specs:
         rows.setdefault(id(g), g)
     which = [list(rows).index(id(g)) for g, _ in specs]
-    squared = any(power == 1 for _, power in specs)
+    squared = [t for t, (_, power) in enumerate(specs) if power == 1]
     k = len(specs)
-    sums = [[] for _ in queries]  # per query, its chunks' sums in ascending order
-    lev_q = [np.zeros((k, q.j.size)) for q in queries]
-    # passes of whole short items, at most _BLOCK segments each; a block of a long item passes alone,
-    # so its temporaries stay about the size of the block (1/16 of the item for the longest)
+    # every item's bounds side by side: item i owns columns cols[i] .. cols[i + 1] - 1
+    sizes = [lo.size for _, lo, _ in items]
+    cols = np.concatenate([[0], np.cumsum(sizes)]).astype(np.intp)
+    lo_c = np.concatenate([np.minimum(lo.ravel(), d.values[-1]) for d, lo, _ in items])  # S = 0 past the last atom
+    hi_c = np.maximum(np.concatenate([np.minimum(hi.ravel(), d.values[-1]) for d, _, hi in items]), lo_c)
+    j_lo = np.empty(lo_c.size, dtype=np.intp)  # segment of each bound; -1 below the first atom
+    j_hi = np.empty(lo_c.size, dtype=np.intp)
+    regions = []  # (item, b0, b1, long): atoms b0 .. b1 - 1 of an item, whose levels one pass computes
+    for i, (d, _, _) in enumerate(items):
+        c0, c1 = cols[i], cols[i + 1]
+        j = np.searchsorted(d.values, np.concatenate([lo_c[c0:c1], hi_c[c0:c1]]), side="right") - 1
+        j_lo[c0:c1], j_hi[c0:c1] = j[: c1 - c0], j[c1 - c0 :]
+        r0, r1 = max(int(j_lo[c0:c1].min()), 0), int(j_hi[c0:c1].max()) + 1  # g(S) is needed on atoms r0 .. r1 - 1
+        if r1 <= r0:
+            continue  # every bound below the first atom
+        n = d.values.size
+        if n <= _BLOCK + 1:
+            regions.append((i, r0, r1, False))
+        else:
+            block = min(_BLOCK, max(_MIN_BLOCK, n // 16))
+            regions.extend((i, b0, min(b0 + block, r1), True) for b0 in range(r0, r1, block))
+    middle = np.zeros((k, lo_c.size))
+    lev_lo = np.ones((k, lo_c.size))  # g(S) = g(1) = 1 below the first atom
+    lev_hi = np.ones((k, lo_c.size))
+    bounds = (cols, j_lo, j_hi, middle, lev_lo, lev_hi)
     group, size = [], 0
-    for c in chunks + [None]:
-        if c is not None and not c[6] and (not group or size + (c[2] - c[1]) <= _BLOCK):
-            group.append(c)
-            size += c[2] - c[1]
+    for r in regions + [None]:
+        if r is not None and not r[3] and (not group or size + r[2] - r[1] <= _BLOCK):
+            group.append(r)
+            size += r[2] - r[1]
             continue
         if group:
-            _pass(group, queries, rows, which, specs, squared, sums, lev_q)
-        group, size = ([], 0) if c is None else ([c], c[2] - c[1]) if not c[6] else ([], 0)
-        if c is not None and c[6]:
-            _pass([c], queries, rows, which, specs, squared, sums, lev_q)
-    out = []
-    for i, q in enumerate(queries):
-        starts = starts_of[i]
-        above_q = np.zeros((k, q.q_above.size))
-        if starts.size:
-            per = np.concatenate(sums[i], axis=1)
-            above = np.cumsum(per[:, ::-1], axis=1)[:, ::-1]  # above[:, i]: from starts[i] to the top
-            read = q.q_above < q.used - 1
-            above_q[:, read] = above[:, np.searchsorted(starts, q.q_above[read])]
-        out.append((above_q, lev_q[i]))
-    return out
+            _pass(group, items, bounds, rows, which, specs)
+        group, size = ([r], r[2] - r[1]) if r is not None and not r[3] else ([], 0)
+        if r is not None and r[3]:
+            _pass([r], items, bounds, rows, which, specs)
+    # the partial segments at the bounds
+    right = np.concatenate([d.values[np.minimum(j_lo[cols[i] : cols[i + 1]] + 1, d.values.size - 1)]
+                            for i, (d, _, _) in enumerate(items)])  # the end of the lower bound's segment
+    left = np.concatenate([d.values[np.maximum(j_hi[cols[i] : cols[i + 1]], 0)]
+                           for i, (d, _, _) in enumerate(items)])  # the start of the upper bound's segment
+    one = j_lo == j_hi  # both bounds in one segment
+    end = np.where(one, hi_c, right)  # where the lower bound's part ends
+    part_lo = np.empty_like(middle)
+    part_hi = np.empty_like(middle)
+    part_lo[:] = end - lo_c
+    part_hi[:] = np.where(one, 0.0, hi_c - left)
+    if squared:
+        part_lo[squared] = 0.5 * (end**2 - lo_c**2)
+        part_hi[squared] = np.where(one, 0.0, 0.5 * (hi_c**2 - left**2))
+    res = part_lo * lev_lo + part_hi * lev_hi + middle
+    return [list(res[:, cols[i] : cols[i + 1]].reshape((k,) + lo.shape)) for i, (_, lo, _) in enumerate(items)]
 
 
-def _pass(group, queries, rows, which, specs, squared, sums, lev_q):
-    """One pass over the segments of the chunks in ``group``: g on their survival levels, the products
-    with the widths, and their sums between start points (see :func:`_running_sums`)."""
-    sfs, widths, squares, offsets, marks = [], [], [], [], []
+def _pass(group, items, bounds, rows, which, specs):
+    """g on the survival levels of the regions in ``group`` (atoms b0 .. b1 - 1 of an item), the
+    products with the segments' widths, and each bound pair's sum over its whole segments; adds the
+    sums to ``middle`` and sets the levels at the bounds held here (see :func:`_integrals`)."""
+    cols, j_lo, j_hi, middle, lev_lo, lev_hi = bounds
+    need_squares = any(power == 1 for _, power in specs)
+    sfs, widths, squares, where = [], [], [], []
     at = 0
-    for i, b0, b1, starts, _, _, _ in group:
-        d = queries[i].dist
-        lv = d.values[b0 : b1 + 1]
-        sfs.append(d.sf[b0:b1])
-        widths.append(lv[1:] - lv[:-1])
-        if squared:
-            squares.append(0.5 * (lv[1:] ** 2 - lv[:-1] ** 2))
-        offsets.append(at)
-        marks.append(starts - b0 + at)
-        at += b1 - b0
-        marks.append([at])  # the chunk's end: no sum runs on into the next chunk
-    s = np.concatenate(sfs) if len(sfs) > 1 else sfs[0]
+    for i, b0, b1, _ in group:
+        d = items[i][0]
+        v, n = d.values, d.values.size
+        s = d.sf[b0:b1]
+        top = min(b1, n - 1)  # segments end at the last atom
+        w = np.zeros(b1 - b0 + 1)  # one more slot, of width 0: where a pair ending at b1 stops
+        w[: top - b0] = v[b0 + 1 : top + 1] - v[b0:top]
+        sfs += [s, s[-1:]]  # the slot's level: the region's own last one, so g sees no new value
+        widths.append(w)
+        if need_squares:
+            q = np.zeros(b1 - b0 + 1)
+            q[: top - b0] = 0.5 * (v[b0 + 1 : top + 1] ** 2 - v[b0:top] ** 2)
+            squares.append(q)
+        where.append(at - b0)  # atom a of this region sits at a + where in the pass
+        at += b1 - b0 + 1
+    s = np.concatenate(sfs)
     width = np.concatenate(widths) if len(widths) > 1 else widths[0]
-    square = (np.concatenate(squares) if len(squares) > 1 else squares[0]) if squared else None
+    square = (np.concatenate(squares) if len(squares) > 1 else squares[0]) if need_squares else None
     levels = np.empty((len(rows), at))
     interior = all(x[0] < 1.0 and x[-1] > 0.0 for x in sfs)  # each piece non-increasing: all of s in (0, 1)
     for r, g in enumerate(rows.values()):
@@ -433,19 +375,38 @@ def _pass(group, queries, rows, which, specs, squared, sums, lev_q):
         else:  # a constant g broadcasts; plain functions (no ``inside``) are called as they are
             lean = getattr(g, "inside", None) if interior else None
             levels[r] = lean(s) if lean is not None else np.asarray(g(s), dtype=float)
-    marks = np.unique(np.concatenate(marks).astype(np.intp, copy=False))
-    marks = marks[marks < at]
-    total = np.zeros((len(specs), marks.size))
-    if marks.size:
-        term = np.empty(at)  # one integrand's terms at a time: temporaries of a few rows of the pass
-        for t, (_, power) in enumerate(specs):
-            np.multiply(levels[which[t]], width if power == 0 else square, out=term)
-            total[t] = np.add.reduceat(term, marks)
-    for (i, b0, _, starts, q_lev, pos, _), off in zip(group, offsets):
-        if starts.size:
-            sums[i].append(total[:, np.searchsorted(marks, starts - b0 + off)])
-        lev_q[i][:, pos] = levels[:, q_lev - b0 + off][which]
-
+    # each pair of bounds: its whole segments j_lo + 1 .. j_hi - 1, clipped to the region
+    if group[0][3]:  # a block of a long item (it passes alone)
+        i, b0, b1, _ = group[0]
+        cidx = np.arange(cols[i], cols[i + 1])
+        jl, jh = j_lo[cidx], j_hi[cidx]
+        shift = where[0]
+        s0 = np.minimum(np.maximum(jl + 1, b0), b1) + shift
+        s1 = np.minimum(np.maximum(jh, b0), b1) + shift
+        inside_lo, inside_hi = (jl >= b0) & (jl < b1), (jh >= b0) & (jh < b1)
+    else:  # whole items: each region holds every bound of its item
+        cidx = np.concatenate([np.arange(cols[i], cols[i + 1]) for i, _, _, _ in group])
+        jl, jh = j_lo[cidx], j_hi[cidx]
+        shift = np.repeat(where, [cols[i + 1] - cols[i] for i, _, _, _ in group])
+        s0, s1 = jl + 1 + shift, jh + shift
+        inside_lo, inside_hi = jl >= 0, jh >= 0
+    ok = s0 < s1  # an empty pair may point anywhere: it reads a valid index and is dropped
+    s0, s1 = np.where(ok, s0, 0), np.where(ok, s1, 0)
+    # pairs by descending start: every index after a pair's end is at or below it, so reduceat's
+    # in-between entries are single elements and the work is one sweep of the pass
+    order = np.argsort(-s0, kind="stable")
+    index = np.zeros(2 * s0.size + 1, dtype=np.intp)
+    index[0:-1:2], index[1:-1:2] = s0[order], s1[order]
+    term = np.empty(at)  # one integrand's terms at a time: temporaries of a few rows of the pass
+    sums = np.empty((len(specs), s0.size))
+    for t, (_, power) in enumerate(specs):
+        np.multiply(levels[which[t]], width if power == 0 else square, out=term)
+        sums[t, order] = np.add.reduceat(term, index)[0:-1:2]
+    middle[:, cidx] += np.where(ok, sums, 0.0)
+    for j, lev, inside in ((jl, lev_lo, inside_lo), (jh, lev_hi, inside_hi)):
+        pick = np.flatnonzero(inside)
+        if pick.size:
+            lev[:, cidx[pick]] = levels[:, (j + shift)[pick]][which]
 
 def _empirical(x: np.ndarray):
     """Distinct values of an equal-weight sample and P(X > value), sorting once and lean on memory.

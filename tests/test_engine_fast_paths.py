@@ -219,7 +219,11 @@ def test_shared_passes_give_each_distribution_its_own_numbers(monkeypatch, block
     for d in dists:
         a = rng.uniform(0.0, d.max, 3)
         items.append((d, a, rng.choice([1.0, 8.0, math.inf], 3)))
+    # between them, a distribution read only below its first atom (S = 1 there)
+    low = dists[2]
+    items.insert(2, (low, np.array([0.0, 0.2 * low.values[0]]), np.array([0.5 * low.values[0], 0.1 * low.values[0]])))
     shared = distribution.layer_profiles(items, GS)
+    assert distribution.layer_profiles([], GS) == []
     for (d, a, lim), (e, second, prices) in zip(items, shared):
         alone = d.layer_profile(a, lim, GS)
         np.testing.assert_array_equal(e, alone[0])

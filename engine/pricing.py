@@ -150,9 +150,9 @@ def price_layers(model: LossModel, layers, distortion) -> pd.DataFrame:
         coarse = model.annual_coarse(oa, ol, below=below)
         groups.append((oa, ol, idx, a, lim, u, coarse))
     # every group's layers, and their error-estimate twins, in shared passes
-    fine = layer_profiles([(u, a, lim) for _, _, _, a, lim, u, _ in groups], gs)
-    twins = iter(layer_profiles([(c, a, lim) for _, _, _, a, lim, _, c in groups if c is not None], gs,
-                                second_moment=False))
+    profiles = layer_profiles([(u, a, lim) for _, _, _, a, lim, u, _ in groups]
+                              + [(c, a, lim) for _, _, _, a, lim, _, c in groups if c is not None], gs)
+    fine, twins = profiles[: len(groups)], iter(profiles[len(groups) :])
     for (oa, ol, idx, a, lim, u, coarse), (e, second, prices) in zip(groups, fine):
         share = np.array([lays[i].share for i in idx])
         el[idx] = share * e

@@ -11,12 +11,13 @@ matching"); both are written through the discretised survival at grid points:
 
 The moment integral is Simpson's rule on each bucket, exact to O(h^4) for
 smooth S. Where S bends (trapezoid and midpoint values differ by more than
-``BEND_ABOVE``) Simpson is also taken on the bucket's halves and the two
-extrapolated (Boole's rule, O(h^6)). Where even they differ by more than
-``REFINE_ABOVE`` (the body of a lognormal with a large cv inside the first
-buckets, a kink such as a single-parameter Pareto's threshold, a density
-infinite at 0 as for gamma or Weibull shapes below 1: Simpson alone loses up
-to 1e-3 of the mean there) Simpson is taken on the bucket's quarters too and
+``BEND_ABOVE``) and Simpson's error, estimated from the fourth differences of
+S over the bucket and each neighbour, may exceed ``SIMPSON_BELOW`` of S, Simpson
+is also taken on the bucket's halves and the two extrapolated (Boole's rule,
+O(h^6)). Where even they differ by more than ``REFINE_ABOVE`` (the body of
+a lognormal with a large cv inside the first buckets, a kink such as a
+single-parameter Pareto's threshold, a density infinite at 0 as for gamma or
+Weibull shapes below 1: Simpson alone loses up to 1e-3 of the mean there) Simpson is taken on the bucket's quarters too and
 the next Romberg column kept (O(h^8)) where it agrees with Boole's rule to
 ``REFINE_ABOVE``; only the buckets where it does not (a kink or a
 singularity) are integrated again by 4 x 16-point Gauss-Legendre. The first
@@ -45,6 +46,7 @@ TILT = 20.0  # total log-damping over the padded grid; keeps round-off amplifica
 ROUNDOFF = 1e-15  # grid probabilities below this are transform round-off, set to zero
 BEND_ABOVE = 1e-9  # |trapezoid - midpoint| of S on a bucket above which Simpson is checked on the halves
 REFINE_ABOVE = 1e-12  # |Simpson - Simpson on halves| of S's mean on a bucket above which neither is trusted
+SIMPSON_BELOW = 1e-13  # Simpson's estimated relative error on a bending bucket below which it is kept
 REFINE_MAX = 4096  # at most this many buckets re-integrated (the sharpest bends first): about 64 sf calls each
 _GL_X, _GL_W = np.polynomial.legendre.leggauss(16)
 _GL_X, _GL_W = 0.5 * (_GL_X + 1.0), 0.5 * _GL_W  # on [0, 1]
@@ -91,6 +93,7 @@ def discretise(sf, h: float, n: int, attachment: float = 0.0, limit: float = mat
         # where S bends, Simpson on the bucket's halves too (two more points), extrapolated (Boole's
         # rule, O(h^6)) where the two agree, and Gauss-Legendre on pieces where they do not
         bent = np.flatnonzero(bend > BEND_ABOVE)
+        bent = bent[~_simpson_settled(edges, mids, bent)]
         sharp = bent
         if bent.size:
             quarters = np.asarray(sf(attachment + (bent[:, None] + _QUARTER_ENDS) * h), dtype=float).reshape(-1, 2)
@@ -124,6 +127,26 @@ def discretise(sf, h: float, n: int, attachment: float = 0.0, limit: float = mat
         probs[m] = sd[m - 1]
         return probs, 0.0
     return probs, float(sd[-1])
+
+
+def _simpson_settled(edges: np.ndarray, mids: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """True where Simpson's rule is already within ``SIMPSON_BELOW`` of S on bucket ``b``, relative (and
+    for bucket 0, which is integrated on geometric pieces in any case).
+
+    Simpson's error on a bucket mean is h^4 S''''/2880, about 1/180 of the
+    fourth difference of S at spacing h/2 (edges and midpoints); it is taken
+    over the bucket with each neighbour, the larger of the two, so a kink or
+    a bend within reach of the bucket keeps it for refinement.
+    """
+    m = mids.size
+    est = np.full(b.size, np.inf)
+    if m >= 2:
+        est[:] = 0.0
+        for first, ok in ((b, b <= m - 2), (b - 1, b >= 1)):  # the windows (b, b + 1) and (b - 1, b)
+            w = first[ok]
+            d4 = np.abs(edges[w] - 4.0 * mids[w] + 6.0 * edges[w + 1] - 4.0 * mids[w + 1] + edges[w + 2])
+            est[ok] = np.maximum(est[ok], d4)
+    return (est / 180.0 <= SIMPSON_BELOW * mids[b]) | (b == 0)  # relative: far-tail buckets keep their digits
 
 
 def _bucket_means(sf, starts: np.ndarray, h: float, pieces: np.ndarray) -> np.ndarray:

@@ -169,19 +169,28 @@ def test_discretised_bucket_means_match_quadrature(name, h, n, a, l):
     # Simpson is kept where S barely bends (trapezoid and midpoint within BEND_ABOVE = 1e-9 of each
     # other); its error there, measured up to 2.3e-12, is what this tolerance allows
     np.testing.assert_allclose(sd[idx], want, rtol=0, atol=1e-11)
-    # the buckets refined past Boole's rule (Romberg on eighths, or Gauss-Legendre) are held far tighter
+    # the buckets where S bends are held far tighter: those Simpson is kept on because the fourth
+    # differences of S (at h/2, over the bucket and each neighbour) put its error below SIMPSON_BELOW of S, and
+    # those refined past Boole's rule (Romberg on eighths, or Gauss-Legendre)
     k = np.arange(m, dtype=float)
     edges, mids = sev.sf(a + np.arange(m + 1) * h), sev.sf(a + (k + 0.5) * h)
     simpson = (edges[:-1] + 4 * mids + edges[1:]) / 6
     quarters = sev.sf(a + (k[:, None] + [0.25, 0.75]) * h)
     halves = (edges[:-1] + 4 * quarters[:, 0] + 2 * mids + 4 * quarters[:, 1] + edges[1:]) / 12
     bends = np.abs(0.5 * (edges[:-1] + edges[1:]) - mids) > fourier.BEND_ABOVE
-    refined = np.flatnonzero(bends & (np.abs(halves - simpson) > fourier.REFINE_ABOVE))
-    refined = refined[(refined > 0) & np.isin(refined, idx)]
+    points = np.empty(2 * m + 1)
+    points[0::2], points[1::2] = edges, mids
+    d4 = np.abs(np.diff(points, 4)[0::2])  # over buckets (b, b + 1), b = 0 .. m - 2
+    simpson_error = np.zeros(m)
+    simpson_error[:-1] = d4 / 180
+    simpson_error[1:] = np.maximum(simpson_error[1:], d4 / 180)
+    kept = np.flatnonzero(bends & (simpson_error <= fourier.SIMPSON_BELOW * mids))
+    refined = np.flatnonzero(bends & (simpson_error > fourier.SIMPSON_BELOW * mids) & (np.abs(halves - simpson) > fourier.REFINE_ABOVE))
+    bent = np.flatnonzero(bends)  # kept, Boole's rule, or refined: every one of them
+    bent = bent[(bent > 0) & np.isin(bent, idx)]
+    np.testing.assert_allclose(sd[bent], want[np.searchsorted(idx, bent)], rtol=0, atol=1e-13)
     if name.startswith("lognormal cv 2.5") and a == 0.0:
-        assert refined.size > 50  # the path is exercised here
-    at = np.searchsorted(idx, refined)
-    np.testing.assert_allclose(sd[refined], want[at], rtol=0, atol=1e-13)
+        assert refined.size > 50 and kept.size > 50  # both paths are exercised here
 
 
 def test_romberg_column_leaves_few_buckets_to_gauss_legendre():

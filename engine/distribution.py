@@ -312,17 +312,20 @@ def _integrals(items, specs) -> list:
     lev_lo = np.ones((k, lo_c.size))  # g(S) = g(1) = 1 below the first atom
     lev_hi = np.ones((k, lo_c.size))
     bounds = (cols, j_lo, j_hi, middle, lev_lo, lev_hi)
+    # a block of a long item passes alone; whole short items share passes of up to _BLOCK atoms
     group, size = [], 0
-    for r in regions + [None]:
-        if r is not None and not r[3] and (not group or size + r[2] - r[1] <= _BLOCK):
-            group.append(r)
-            size += r[2] - r[1]
-            continue
-        if group:
-            _pass(group, items, bounds, rows, which, specs)
-        group, size = ([r], r[2] - r[1]) if r is not None and not r[3] else ([], 0)
-        if r is not None and r[3]:
+    for r in regions:
+        _, b0, b1, long = r
+        if long:
             _pass([r], items, bounds, rows, which, specs)
+            continue
+        if group and size + b1 - b0 > _BLOCK:
+            _pass(group, items, bounds, rows, which, specs)
+            group, size = [], 0
+        group.append(r)
+        size += b1 - b0
+    if group:
+        _pass(group, items, bounds, rows, which, specs)
     # the partial segments at the bounds
     right = np.concatenate([d.values[np.minimum(j_lo[cols[i] : cols[i + 1]] + 1, d.values.size - 1)]
                             for i, (d, _, _) in enumerate(items)])  # the end of the lower bound's segment

@@ -17,12 +17,12 @@ is also taken on the bucket's halves and the two extrapolated (Boole's rule,
 O(h^6)). Where even they differ by more than ``REFINE_ABOVE`` (the body of
 a lognormal with a large cv inside the first buckets, a kink such as a
 single-parameter Pareto's threshold, a density infinite at 0 as for gamma or
-Weibull shapes below 1: Simpson alone loses up to 1e-3 of the mean there) Simpson is taken on the bucket's quarters too and
-the next Romberg column kept (O(h^8)) where it agrees with Boole's rule to
-``REFINE_ABOVE``; only the buckets where it does not (a kink or a
-singularity) are integrated again by 4 x 16-point Gauss-Legendre. The first
-bucket is always integrated on pieces shrinking geometrically towards its
-left end.
+Weibull shapes below 1: Simpson alone loses up to 1e-3 of the mean there)
+Simpson is taken on the bucket's quarters too and the next Romberg column
+kept (O(h^8)) where it agrees with Boole's rule to ``REFINE_ABOVE``; only the
+buckets where it does not (a kink or a singularity) are integrated again by
+4 x 16-point Gauss-Legendre. The first bucket is always integrated on pieces
+shrinking geometrically towards its left end.
 
 The aggregate is computed with scipy's real FFT on a zero-padded grid after
 an exponential tilt (Grubel & Hermesmeier 1999), which damps the wrap-around
@@ -90,8 +90,8 @@ def discretise(sf, h: float, n: int, attachment: float = 0.0, limit: float = mat
         mids = np.asarray(sf(attachment + (k + 0.5) * h), dtype=float)
         sd = (edges[:-1] + 4.0 * mids + edges[1:]) / 6.0
         bend = np.abs(0.5 * (edges[:-1] + edges[1:]) - mids)  # 3/2 of Simpson's correction to the trapezoid
-        # where S bends, Simpson on the bucket's halves too (two more points), extrapolated (Boole's
-        # rule, O(h^6)) where the two agree, and Gauss-Legendre on pieces where they do not
+        # where S bends and Simpson is not already settled, Simpson on the bucket's halves too (two more
+        # points), extrapolated (Boole's rule, O(h^6)); then Romberg on quarters, then Gauss-Legendre
         bent = np.flatnonzero(bend > BEND_ABOVE)
         bent = bent[~_simpson_settled(edges, mids, bent)]
         sharp = bent

@@ -650,12 +650,13 @@ def _mean_to_top(sev: Severity, a: float, l: float, top: float) -> float:
     grid's severity mean must match, whatever lies beyond the grid top."""
     if l <= top:
         return _integrate_sf(sev, a, a + l)
-    closed = _closed_layer_mean(sev, a, min(a + top, sev.upper))
+    b = min(a + top, sev.upper)
+    closed = _closed_layer_mean(sev, a, b)
     if closed is not None:
         return closed
     q = float(sev.ppf(0.01))
     first = max(q * 1e-3, 1e-300) if math.isfinite(q) and q > a else max(abs(a), 1.0) * 1e-9
-    return integral(sev.sf, a, min(a + min(l, top), sev.upper), first=first)
+    return integral(sev.sf, a, b, first=first)
 
 
 def _analytic_moments(sev: Severity, f: Frequency, a: float, l: float, top: float, to_top: float) -> dict:

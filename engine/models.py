@@ -580,8 +580,9 @@ def _merged(piece, l: float) -> tuple:
     half the length (same distribution, half the transform).
     """
     bucket, points, probs, tail, start, stop = piece
-    ext = np.append(probs, tail)
     end = probs.size
+    ext = np.empty(end + 1)
+    ext[:end], ext[end] = probs, tail
     last = int(round(l / bucket)) if math.isfinite(l) else end
     odd = np.arange(1, last, 2)
     half = 0.5 * ext[odd]

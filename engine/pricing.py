@@ -160,17 +160,14 @@ def price_layers(model: LossModel, layers, distortion) -> pd.DataFrame:
         pa[idx] = u.survival(a)
         exhaust_at = np.where(np.isfinite(lim), a + lim, a + ol)
         pe[idx] = np.where(np.isfinite(exhaust_at), u.survival_left(exhaust_at), 0.0)
-        plain = _beyond(model, u, oa, ol, a, lim, None)
-        for t, g in enumerate(gs):
-            prem[t, idx] = share * prices[t]
-            err[t, idx] = share * np.maximum(_beyond(model, u, oa, ol, a, lim, g), plain)
+        p = np.asarray(prices, dtype=float).reshape(d, len(idx))
+        prem[:, idx] = share * p
+        err[:, idx] = share * _beyond(model, u, oa, ol, a, lim, gs)
         if coarse is not None:
             ec, _, pc = next(twins)
             with np.errstate(invalid="ignore"):
-                de = np.abs(np.asarray(e) - ec)
-                for t in range(d):
-                    change = np.maximum(np.abs(np.asarray(prices[t]) - pc[t]), de)
-                    disc[t, idx] = share * np.where(np.isnan(change), np.inf, change)  # unknown: no tolerance met
+                change = np.maximum(np.abs(p - np.asarray(pc, dtype=float).reshape(d, len(idx))), np.abs(np.asarray(e) - ec))
+            disc[:, idx] = share * np.where(np.isnan(change), np.inf, change)  # unknown: no tolerance met
         note = _mean_note(u.diagnostics)
         for i in idx:
             mean_note[i] = note
@@ -209,8 +206,16 @@ def _check_finite_mean(model: LossModel, lays: list[Layer]):
             )
 
 
-def _beyond(model, u, oa, ol, a, lim, g) -> np.ndarray:
-    """grid_error of each layer before share: beyond_bound, with unlimited layers' estimate from the model."""
+def _beyond(model, u, oa, ol, a, lim, gs) -> np.ndarray:
+    """grid_error of each layer before share, one row per distortion in ``gs``: beyond_bound under it (at
+    least the undistorted one), with unlimited layers' estimate from the model."""
+    plain = _beyond_one(model, u, oa, ol, a, lim, None)
+    if not plain.any():  # no layer reaches the top (the usual case): no distortion changes that
+        return np.zeros((len(gs),) + plain.shape)
+    return np.array([np.maximum(_beyond_one(model, u, oa, ol, a, lim, g), plain) for g in gs])
+
+
+def _beyond_one(model, u, oa, ol, a, lim, g) -> np.ndarray:
     out = np.asarray(u.beyond_bound(a, lim, g), dtype=float)
     if u.beyond > 0:
         out = out.copy()

@@ -54,6 +54,7 @@ _EVEN = np.linspace(0.0, 1.0, 5)  # 4 equal pieces of a bucket
 _QUARTER_ENDS = np.array([0.25, 0.75])
 _ODD_EIGHTHS = np.array([0.125, 0.375, 0.625, 0.875])
 _GEOMETRIC = np.concatenate([[0.0], 2.0 ** np.arange(-30, 1)])  # pieces halving towards the bucket's left end
+_EVEN_PIECES, _GEOMETRIC_PIECES = ((p[:-1], np.diff(p)) for p in (_EVEN, _GEOMETRIC))  # (starts, widths) in buckets
 
 
 def nice_bucket(h: float) -> float:
@@ -117,8 +118,8 @@ def discretise(sf, h: float, n: int, attachment: float = 0.0, limit: float = mat
                 if sharp.size > REFINE_MAX:
                     sharp = sharp[np.argpartition(change, -REFINE_MAX)[-REFINE_MAX:]]
         if sharp.size:
-            sd[sharp] = _bucket_means(sf, attachment + sharp * h, h, _EVEN)
-        sd[0] = _bucket_means(sf, np.array([float(attachment)]), h, _GEOMETRIC)[0]
+            sd[sharp] = _bucket_means(sf, attachment + sharp * h, h, _EVEN_PIECES)
+        sd[0] = _bucket_means(sf, np.array([float(attachment)]), h, _GEOMETRIC_PIECES)[0]
     sd = np.minimum.accumulate(np.minimum(np.maximum(sd, 0.0), 1.0))  # guard against non-monotone round-off in scipy's sf
     probs = np.zeros(n)
     probs[0] = 1.0 - sd[0]
@@ -154,14 +155,15 @@ def _simpson_settled(edges: np.ndarray, mids: np.ndarray, b: np.ndarray) -> np.n
     return (est / 180.0 <= SIMPSON_BELOW * mids[b]) | (b == 0)  # relative: far-tail buckets keep their digits
 
 
-def _bucket_means(sf, starts: np.ndarray, h: float, pieces: np.ndarray) -> np.ndarray:
+def _bucket_means(sf, starts: np.ndarray, h: float, pieces: tuple) -> np.ndarray:
     """(1/h) * integral of sf over [s, s + h] for each s in ``starts`` (shape (r,)).
 
-    Gauss-Legendre with 16 points on each piece; ``pieces`` are the piece
-    edges as fractions of the bucket, from 0 to 1.
+    Gauss-Legendre with 16 points on each piece; ``pieces`` is (left ends,
+    widths) of the pieces as fractions of the bucket, covering [0, 1].
     """
-    width = np.diff(pieces) * h
-    x = starts[:, None, None] + (pieces[:-1] * h)[None, :, None] + width[None, :, None] * _GL_X[None, None, :]
+    left, width = pieces
+    width = width * h
+    x = starts[:, None, None] + (left * h)[None, :, None] + width[None, :, None] * _GL_X[None, None, :]
     s = np.asarray(sf(x.ravel()), dtype=float).reshape(x.shape)
     return (s @ _GL_W) @ width / h
 

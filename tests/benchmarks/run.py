@@ -336,6 +336,60 @@ def raw_transform(n: int, padding: int = 2):
     return run
 
 
+def bare_work(tower) -> dict:
+    """The bare numerical work of one cold engine call on ``tower``, captured from a call and redone alone.
+
+    Returns name -> callable: "transforms" (tilted rfft, pgf, irfft at every length the engine
+    transforms, error-estimate grids included), "severity" (the survival function on every array the
+    discretisation evaluates it on) and "distortions" (each distortion on the survival levels of each
+    integral pass). What the engine spends beyond their sum is everything else: Python, the small
+    numpy steps between them, the table.
+    """
+    import layerwise.engine.models as models_mod
+
+    lengths, sf_inputs, levels = [], [], []
+    aggregate, discretise = models_mod.aggregate, models_mod.discretise
+    classes = {type(g) for g in DISTORTIONS.values()}
+    saved = {cls: cls.__dict__.get("inside") for cls in classes}
+
+    def counting_aggregate(pgf, probs, tail, padding=2, max_count=math.inf):
+        lengths.append((probs.size, max(int(padding), 2)))
+        return aggregate(pgf, probs, tail, padding, max_count)
+
+    def counting_discretise(sf, *args, **kw):
+        def recorded(x):
+            sf_inputs.append(np.array(x, dtype=float, copy=True))
+            return sf(x)
+        return discretise(recorded, *args, **kw)
+
+    def recording(inside):
+        def wrapped(self, s):
+            levels.append((self, np.array(s, copy=True)))
+            return inside(self, s)
+        return wrapped
+
+    models_mod.aggregate, models_mod.discretise = counting_aggregate, counting_discretise
+    for cls in classes:
+        cls.inside = recording(cls.inside)
+    try:
+        engine_tower(tower)
+    finally:
+        models_mod.aggregate, models_mod.discretise = aggregate, discretise
+        for cls, inside in saved.items():
+            if inside is None:
+                del cls.inside
+            else:
+                cls.inside = inside
+    runs = [raw_transform(n, pad) for n, pad in lengths]
+    sf = SEV.sf
+    return {
+        "transforms": lambda: [r() for r in runs],
+        "severity": lambda: [sf(x) for x in sf_inputs],
+        "distortions": lambda: [g.inside(s) for g, s in levels],
+        "counts": (len(lengths), sum(x.size for x in sf_inputs), sum(s.size for _, s in levels)),
+    }
+
+
 def section_towers(rep: Report, quick: bool, profile: bool):
     rep.add("## 1. Frequency-severity towers")
     rep.add()
@@ -365,6 +419,7 @@ def section_towers(rep: Report, quick: bool, profile: bool):
     raw_occ_list = [raw_transform(n) for pieces in transforms_of(OCC_TOWER) for n in pieces]
     raw_agg = lambda: [r() for r in raw_agg_list]  # noqa: E731
     raw_occ = lambda: [r() for r in raw_occ_list]  # noqa: E731
+    bare = {"agg": bare_work(AGG_TOWER), "occ": bare_work(OCC_TOWER)}
     warm_agg, warm_occ = lw.FrequencySeverity(FREQ, SEV), lw.FrequencySeverity(FREQ, SEV)
     engine_tower(AGG_TOWER, warm_agg), engine_tower(OCC_TOWER, warm_occ)
     engine_tower(AGG_TOWER), engine_tower(OCC_TOWER)  # imports and first-call costs out of the way
@@ -379,6 +434,7 @@ def section_towers(rep: Report, quick: bool, profile: bool):
         "occ_warm": lambda: engine_tower(OCC_TOWER, warm_occ),
         "agg_noest": lambda: engine_tower_without_estimate(AGG_TOWER),
         "occ_noest": lambda: engine_tower_without_estimate(OCC_TOWER),
+        **{f"{key}_bare_{part}": bare[key][part] for key in bare for part in ("transforms", "severity", "distortions")},
     }, repeat)
     results = {"aggregate": measures_from_frame(engine_tower(AGG_TOWER)), "occurrence": measures_from_frame(engine_tower(OCC_TOWER))}
 
@@ -435,6 +491,25 @@ def section_towers(rep: Report, quick: bool, profile: bool):
             f"({grids['aggregate'][0][1]:,} points, padded) takes {ms(t_uniform)} ms, "
             f"{t_uniform / rep.data['fs']['aggregate']['t_eng']:.1f}x the engine's whole aggregate tower.")
     rep.add()
+
+    rep.add("Where the time goes: the engine's bare numerical work, captured from one cold call and redone alone "
+            "in the same interleaved runs: every transform it computes (error-estimate grids included), the "
+            "severity's survival function on every point the discretisation evaluates, and every distortion on "
+            "the survival levels of the integral passes. The rest is Python, the small numpy steps between them "
+            "and the 21-column table. The target's yardstick, the raw transform, is one transform per layer's grid.")
+    rep.add()
+    rows = []
+    for name, key in (("aggregate", "agg"), ("occurrence", "occ")):
+        parts = {p: median(times[f"{key}_bare_{p}"]) for p in ("transforms", "severity", "distortions")}
+        floor = sum(parts.values())
+        t_eng, t_raw = median(times[key]), median(times[key + "_raw"])
+        n_fft, n_sf, n_g = bare[key]["counts"]
+        rows.append([name, ms(t_eng), f"{ms(parts['transforms'])} ({n_fft})", f"{ms(parts['severity'])} ({n_sf:,})",
+                     f"{ms(parts['distortions'])} ({n_g:,})", ms(floor), f"{floor / t_raw:.1f}", ms(t_eng - floor),
+                     f"{(t_eng - floor) / t_raw:.1f}"])
+        rep.data["fs"][name]["t_floor"] = floor
+    rep.table(["tower", "engine ms", "transforms ms (count)", "severity sf ms (points)", "distortions ms (levels)",
+               "bare work ms", "bare work / raw", "the rest ms", "the rest / raw"], rows)
 
     for name in ("aggregate", "occurrence"):
         ref, levels = refs[name]

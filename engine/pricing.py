@@ -189,9 +189,11 @@ def price_layers(model: LossModel, layers, distortion) -> pd.DataFrame:
         return _frame({}, described, attachment, limit, share, collateral, el, prem[0], sd, pa, pe, err[0], disc[0], notes[0])
     # one table for all distortions, block after block (building it once costs far less than concatenating)
     lead = {"distortion": [name for name in names for _ in range(k)]}
-    return _frame(lead, described * d, attachment * d, np.tile(limit, d), np.tile(share, d), np.tile(collateral, d),
-                  np.tile(el, d), prem.ravel(), np.tile(sd, d), np.tile(pa, d), np.tile(pe, d), err.ravel(), disc.ravel(),
-                  [w for block in notes for w in block])
+    def tile(x):  # np.tile for 1-d x, without its overhead
+        return np.concatenate([x] * d)
+
+    return _frame(lead, described * d, attachment * d, tile(limit), tile(share), tile(collateral), tile(el), prem.ravel(),
+                  tile(sd), tile(pa), tile(pe), err.ravel(), disc.ravel(), [w for block in notes for w in block])
 
 
 def _check_finite_mean(model: LossModel, lays: list[Layer]):

@@ -614,11 +614,15 @@ def _check_grid_fits(h: float, n: int, a: float, l: float):
 
 def _grid_distribution(grid, agg, beyond, top) -> LossDistribution:
     nz = agg > 0
-    if not nz.any():  # every year lands beyond the grid (e.g. far more claims than the grid can hold)
+    count = int(np.count_nonzero(nz))
+    if not count:  # every year lands beyond the grid (e.g. far more claims than the grid can hold)
         return LossDistribution.from_atoms([0.0], [0.0], beyond=1.0, top=top, sorted_unique=True)
     # what from_atoms(..., sorted_unique=True) builds, without re-validating the transform's own output
     # (ascending grid points, probabilities >= 0 summing with beyond to 1)
-    values, probs = grid[nz], agg[nz]
+    if nz[:count].all():  # the atoms are a prefix of the grid (the usual case: only the far tail underflows)
+        values, probs = grid[:count], agg[:count]
+    else:
+        values, probs = grid[nz], agg[nz]
     if beyond > 0:
         values, probs = np.append(values, top), np.append(probs, beyond)
         return LossDistribution(values, _sf_from_probs(probs), float(beyond), float(top))

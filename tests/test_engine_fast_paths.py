@@ -255,3 +255,24 @@ def test_long_distribution_queried_only_near_its_top():
     width = v[-2] - x[0]
     e, _, prices = d.layer_profile(x[:1], [width], GS)
     assert prices[1] == pytest.approx(exact_layer(d, x[0], width, GS[1]), rel=1e-13)
+
+
+@pytest.mark.parametrize("agg,beyond", [
+    ([0.5, 0.3, 0.2, 0.0, 0.0, 0.0], 0.0),  # atoms a prefix of the grid: sliced
+    ([0.5, 0.0, 0.3, 0.0, 0.2, 0.0], 0.0),  # gaps (a lattice severity): gathered
+    ([0.3, 0.0, 0.3, 0.4, 0.0, 0.0], 0.0),  # as many atoms as a prefix would hold, ending at one, with a gap
+    ([0.0, 0.4, 0.5, 0.0, 0.0, 0.0], 0.1),  # nothing at 0, mass beyond the top
+    ([0.4, 0.0, 0.5, 0.0, 0.0, 0.0], 0.1),
+])
+def test_grid_distribution_matches_from_atoms(agg, beyond):
+    # the transform's output turned into a distribution without validation, against the validating
+    # public constructor on the same atoms
+    from layerwise.engine.models import _grid_distribution
+
+    grid, agg = np.arange(6.0) * 2.5, np.array(agg)
+    got = _grid_distribution(grid, agg, beyond, 15.0)
+    keep = agg > 0
+    ref = LossDistribution.from_atoms(grid[keep], agg[keep], beyond=beyond, top=15.0 if beyond > 0 else None)
+    np.testing.assert_array_equal(got.values, ref.values)
+    np.testing.assert_allclose(got.sf, ref.sf, rtol=1e-15, atol=0)
+    assert (got.beyond, got.top) == (ref.beyond, ref.top)

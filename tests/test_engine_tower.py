@@ -126,3 +126,20 @@ def test_aggregate_tower_on_model_and_year_loss_table(simulated):
         assert abs(t_model["premium"].iloc[i] - t_sample["premium"].iloc[i]) <= 5 * premium_standard_error(x, G), i
     # the model's whole annual mean is the compound mean E[N] E[X] (to the transform's round-off)
     assert model.mean == pytest.approx(LAMBDA * MEAN, rel=2e-8)
+
+
+def test_priced_table_text_columns_hold_the_text():
+    # the text columns are built in pandas' own string dtype (Python storage) where it has one: the same
+    # strings as the layers' descriptions and the distortion names, compared as text and never lost to NaN
+    model = lw.FrequencySeverity(lw.poisson(2.0), lw.lognormal(mean=1e6, cv=1.5))
+    tower = lw.stack([1e6, 2e6], start=1e6)
+    gs = {"wang": lw.WangTransform(0.3), "tvar": lw.TVaRDistortion(0.9)}
+    df = lw.price_layers(model, tower, gs)
+    assert df["distortion"].tolist() == ["wang", "wang", "tvar", "tvar"]
+    assert df["layer"].tolist() == [x.describe() for x in tower] * 2
+    assert df["warning"].tolist() == [""] * 4
+    assert (df["distortion"] == "tvar").sum() == 2 and not df[["distortion", "layer", "warning"]].isna().any().any()
+    from layerwise.engine import pricing
+
+    if pricing._TEXT is not None:  # pandas 2.3 and later
+        assert all(df[c].dtype == "str" for c in ("distortion", "layer", "warning"))

@@ -432,7 +432,7 @@ class FrequencySeverity(LossModel):
     @staticmethod
     def _on_grid(piece, agg, beyond) -> LossDistribution:
         bucket, stop = piece[0], piece[5]
-        return _grid_distribution(np.arange(stop, dtype=float) * bucket, agg, beyond, stop * bucket)
+        return _grid_distribution(bucket, agg, beyond, stop * bucket)
 
     @staticmethod
     def _join(body: LossDistribution, piece, agg, beyond) -> LossDistribution:
@@ -612,7 +612,9 @@ def _check_grid_fits(h: float, n: int, a: float, l: float):
         raise InputError("limit", f"{l:g} (attachment {a:g}) is too {size} for a grid of {n} points of {h:g}")
 
 
-def _grid_distribution(grid, agg, beyond, top) -> LossDistribution:
+def _grid_distribution(bucket: float, agg: np.ndarray, beyond: float, top: float) -> LossDistribution:
+    """The distribution of the transform's probabilities ``agg`` on the grid points k * bucket, those
+    at or beyond ``top`` held there."""
     nz = agg > 0
     count = int(np.count_nonzero(nz))
     if not count:  # every year lands beyond the grid (e.g. far more claims than the grid can hold)
@@ -620,9 +622,9 @@ def _grid_distribution(grid, agg, beyond, top) -> LossDistribution:
     # what from_atoms(..., sorted_unique=True) builds, without re-validating the transform's own output
     # (ascending grid points, probabilities >= 0 summing with beyond to 1)
     if nz[:count].all():  # the atoms are a prefix of the grid (the usual case: only the far tail underflows)
-        values, probs = grid[:count], agg[:count]
+        values, probs = np.arange(count, dtype=float) * bucket, agg[:count]
     else:
-        values, probs = grid[nz], agg[nz]
+        values, probs = np.flatnonzero(nz) * bucket, agg[nz]
     if beyond > 0:
         values, probs = np.append(values, top), np.append(probs, beyond)
         return LossDistribution(values, _sf_from_probs(probs), float(beyond), float(top))

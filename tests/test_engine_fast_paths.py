@@ -270,7 +270,7 @@ def test_grid_distribution_matches_from_atoms(agg, beyond):
     from layerwise.engine.models import _grid_distribution
 
     grid, agg = np.arange(6.0) * 2.5, np.array(agg)
-    got = _grid_distribution(grid, agg, beyond, 15.0)
+    got = _grid_distribution(2.5, agg, beyond, 15.0)
     keep = agg > 0
     ref = LossDistribution.from_atoms(grid[keep], agg[keep], beyond=beyond, top=15.0 if beyond > 0 else None)
     np.testing.assert_array_equal(got.values, ref.values)

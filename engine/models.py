@@ -584,11 +584,10 @@ def _merged(piece, l: float) -> tuple:
     ext = np.empty(end + 1)
     ext[:end], ext[end] = probs, tail
     last = int(round(l / bucket)) if math.isfinite(l) else end
-    odd = np.arange(1, last, 2)
-    half = 0.5 * ext[odd]
-    ext[odd] = 0.0
-    ext[odd - 1] += half
-    ext[odd + 1] += half
+    half = 0.5 * ext[1:last:2]  # the odd points below the top atom, as strided views rather than gathers
+    ext[1:last:2] = 0.0
+    ext[0 : last - 1 : 2] += half
+    ext[2 : last + 1 : 2] += half
     if end % 2 == 0 and points % 2 == 0 and start % 2 == 0 and stop % 2 == 0 and last % 2 == 0:
         return (2.0 * bucket, points // 2, ext[:end:2], float(ext[end]), start // 2, stop // 2)
     return (bucket, points, ext[:end], float(ext[end]), start, stop)

@@ -486,7 +486,6 @@ def section_towers(rep: Report, quick: bool, profile: bool):
                "top layer: MC error / engine error (worst measure)"], rows)
 
     t_uniform = median(times["agg_raw_uniform"])
-    rep.data["fs"]["aggregate"]["t_raw_uniform"] = t_uniform
     rep.add(f"For scale: one bare transform at the length of the uniform grid the split one stands for "
             f"({grids['aggregate'][0][1]:,} points, padded) takes {ms(t_uniform)} ms, "
             f"{t_uniform / rep.data['fs']['aggregate']['t_eng']:.1f}x the engine's whole aggregate tower.")
@@ -507,7 +506,6 @@ def section_towers(rep: Report, quick: bool, profile: bool):
         rows.append([name, ms(t_eng), f"{ms(parts['transforms'])} ({n_fft})", f"{ms(parts['severity'])} ({n_sf:,})",
                      f"{ms(parts['distortions'])} ({n_g:,})", ms(floor), f"{floor / t_raw:.1f}", ms(t_eng - floor),
                      f"{(t_eng - floor) / t_raw:.1f}"])
-        rep.data["fs"][name]["t_floor"] = floor
     rep.table(["tower", "engine ms", "transforms ms (count)", "severity sf ms (points)", "distortions ms (levels)",
                "bare work ms", "bare work / raw", "the rest ms", "the rest / raw"], rows)
 

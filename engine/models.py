@@ -227,8 +227,8 @@ class FrequencySeverity(LossModel):
         return self._plan(float(occ_attachment), float(occ_limit))[2]
 
     def _plan(self, a: float, l: float) -> tuple:
-        """(bucket, grid_length, body points) for the terms, remembered on the model (they cost
-        several scipy quantiles)."""
+        """(bucket, grid_length, body points, resolution, piece specs, body top) for the terms, remembered
+        on the model: they cost several scipy quantiles, and every build reads them several times."""
         plans = self.__dict__.get("_plans")
         if plans is None:
             plans = {}
@@ -236,7 +236,16 @@ class FrequencySeverity(LossModel):
         plan = plans.get((a, l))
         if plan is None:
             h, n = self._grid(a, l)
-            plan = plans[(a, l)] = (h, n, self._body_points(a, l, h, n))
+            body = self._body_points(a, l, h, n)
+            if body == n:
+                parts, specs = ((0.0, h),), ((h, n, n, 0, n),)
+            else:
+                coarse_points = max(COARSE_PER_BODY * body, MIN_BODY_POINTS)
+                wide = h * (n // coarse_points)  # an exact power-of-2 multiple of h
+                parts = ((0.0, h), (body * h, wide))
+                points = int(round(n * h / wide))
+                specs = ((h, 3 * body // 2, body, 0, body), (wide, points, points, int(round(body * h / wide)), points))
+            plan = plans[(a, l)] = (h, n, body, parts, specs, parts[1][0] if len(parts) > 1 else math.inf)
         return plan
 
     def _grid(self, occ_attachment: float, occ_limit: float) -> tuple[float, int]:
@@ -325,12 +334,7 @@ class FrequencySeverity(LossModel):
         ``((0.0, grid()[0]),)`` for an ordinary grid; a split one (see
         :meth:`body_points`) adds the coarse bucket from the body's top.
         """
-        h, n = self.grid(occ_attachment, occ_limit)
-        body = self.body_points(occ_attachment, occ_limit)
-        if body == n:
-            return ((0.0, h),)
-        coarse_points = max(COARSE_PER_BODY * body, MIN_BODY_POINTS)
-        return ((0.0, h), (body * h, h * (n // coarse_points)))  # an exact power-of-2 multiple of h
+        return self._plan(float(occ_attachment), float(occ_limit))[3]
 
     def uniform_grid(self) -> "FrequencySeverity":
         """This model on one uniform grid of ``grid()`` (never split), for sums of units on a common grid.
@@ -364,8 +368,7 @@ class FrequencySeverity(LossModel):
 
     def _body_top(self, a, l) -> float:
         """Top of the body of a split grid (inf when the grid is not split)."""
-        parts = self.resolution(a, l)
-        return parts[1][0] if len(parts) > 1 else math.inf
+        return self._plan(a, l)[5]
 
     def _piece_specs(self, a, l) -> tuple:
         """(bucket, transform points, severity points, first used index, end of used indices) per grid.
@@ -377,14 +380,7 @@ class FrequencySeverity(LossModel):
         stays about 1e-9 of the survival there) and the whole range at the
         coarse bucket, used from the body's top.
         """
-        h, n = self.grid(a, l)
-        parts = self.resolution(a, l)
-        if len(parts) == 1:
-            return ((h, n, n, 0, n),)
-        body = self.body_points(a, l)
-        (_, h), (body_top, wide) = parts
-        points = int(round(n * h / wide))
-        return ((h, 3 * body // 2, body, 0, body), (wide, points, points, int(round(body_top / wide)), points))
+        return self._plan(a, l)[4]
 
     def _piece(self, a, l, i: int, *, release: bool = False) -> tuple:
         """Grid ``i`` of :meth:`_piece_specs` with its discretised severity:

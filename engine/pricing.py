@@ -36,6 +36,7 @@ tower of aggregate layers costs one model build plus O(n + k log n).
 """
 from __future__ import annotations
 
+import functools
 import math
 import warnings
 from collections.abc import Iterable, Mapping
@@ -59,6 +60,10 @@ try:  # pandas' own text dtype ("str") in its Python storage: built several time
     _TEXT = pd.StringDtype("python", na_value=np.nan)
 except TypeError:  # pandas before 2.3: text columns stay object
     _TEXT = None
+try:  # pandas 3: a frame from its blocks as they are, without inferring each column's type again
+    from pandas.api.internals import create_dataframe_from_blocks as _from_blocks
+except ImportError:  # pragma: no cover - older pandas
+    _from_blocks = None
 
 COLUMNS = [
     "layer", "attachment", "limit", "share", "expected_loss", "premium", "margin", "loss_ratio",
@@ -278,9 +283,7 @@ def _frame(lead, described, attachment, limit, share, collateral, el, prem, sd, 
         # a premium equal to the collateral up to the round-off of its sum (e.g. TVaR of a layer exhausted
         # more often than 1 - p) leaves no capital: not 1e-14 of it with a return of 1e14
         capital = np.where(np.isfinite(collateral) & (np.abs(capital) <= 1e-12 * np.abs(collateral)), 0.0, capital)
-        df = pd.DataFrame({
-            **{k: _text(v) for k, v in lead.items()},
-            "layer": _text(described),
+        numbers = {
             "attachment": attachment,
             "limit": limit,
             "share": share,
@@ -300,9 +303,24 @@ def _frame(lead, described, attachment, limit, share, collateral, el, prem, sd, 
             "prob_exhaust": pe,
             "grid_error": err,
             "discretisation_error": disc,
-            "warning": _text(notes),
-        })
-    return df
+        }
+    texts = [_text(v) for v in lead.values()] + [_text(described)]
+    if _from_blocks is None or _TEXT is None:
+        return pd.DataFrame({**dict(zip(list(lead) + ["layer"], texts)), **numbers, "warning": _text(notes)})
+    # the frame pandas' constructor builds from these columns (the numbers in one float block, each text
+    # column its own), put together directly: the constructor's per-column checks cost more than the pricing
+    lead_count = len(texts)
+    block = np.array(list(numbers.values()), dtype=np.float64)
+    blocks = [(t, np.array([i])) for i, t in enumerate(texts)]
+    blocks.append((block, np.arange(lead_count, lead_count + block.shape[0])))
+    blocks.append((_text(notes), np.array([lead_count + block.shape[0]])))
+    return _from_blocks(blocks, index=pd.RangeIndex(block.shape[1]), columns=_columns(tuple(lead)))
+
+
+@functools.lru_cache(maxsize=8)
+def _columns(lead: tuple) -> pd.Index:
+    """The priced table's column labels after the ``lead`` ones (an Index is immutable: frames share it)."""
+    return pd.Index(list(lead) + COLUMNS)
 
 
 def _text(values: list):

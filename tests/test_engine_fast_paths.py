@@ -276,3 +276,25 @@ def test_grid_distribution_matches_from_atoms(agg, beyond):
     np.testing.assert_array_equal(got.values, ref.values)
     np.testing.assert_allclose(got.sf, ref.sf, rtol=1e-15, atol=0)
     assert (got.beyond, got.top) == (ref.beyond, ref.top)
+
+
+def test_priced_table_from_blocks_equals_pandas_constructor(monkeypatch):
+    """The priced table put together from its blocks is the frame pandas' own constructor builds from the
+    same columns: labels, dtypes, values, and it takes edits like any frame."""
+    from layerwise.engine import pricing
+
+    model = lw.FrequencySeverity(lw.poisson(3.0), lw.lognormal(mean=2e5, cv=1.5))
+    tower = lw.stack([2e5, 3e5, 5e5], start=1e5, basis="occurrence", reinstatements=1)
+    several = {"wang": GS[0], "ph": GS[1]}
+    fast = [pricing.price_layers(model, tower, several), pricing.price_layers(model, tower[0], GS[2])]
+    monkeypatch.setattr(pricing, "_from_blocks", None)
+    plain = [pricing.price_layers(model, tower, several), pricing.price_layers(model, tower[0], GS[2])]
+    for f, p in zip(fast, plain):
+        assert list(f.columns) == list(p.columns)
+        assert (f.dtypes == p.dtypes).all()
+        assert f.index.equals(p.index)
+        assert f.equals(p)
+        f.loc[0, "premium"] = p.loc[0, "premium"] = -1.0
+        f["extra"] = p["extra"] = 1.0
+        assert f.equals(p)
+    assert list(fast[0].columns) == ["distortion"] + pricing.COLUMNS + ["extra"]

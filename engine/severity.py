@@ -63,9 +63,9 @@ class Severity:
     def sf(self, x):
         return self.dist.sf(x) if self.fast_sf is None else self.fast_sf(x)
 
-    @property
+    @functools.cached_property
     def upper(self) -> float:
-        """Top of the support (inf for unbounded severities)."""
+        """Top of the support (inf for unbounded severities; computed once: scipy's support() checks its arguments)."""
         return float(self.dist.support()[1])
 
     def cdf(self, x):

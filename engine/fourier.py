@@ -85,7 +85,7 @@ def discretise(sf, h: float, n: int, attachment: float = 0.0, limit: float = mat
         raise InputError("bucket", f"the limit {limit:g} must be a whole number of buckets below the grid length")
     k = np.arange(m, dtype=float)
     if method == "rounding":
-        sd = sf(attachment + (k + 0.5) * h)
+        sd = np.array(sf(attachment + (k + 0.5) * h), dtype=float)  # a copy of its own: clipped in place below
     else:
         edges = np.asarray(sf(attachment + np.arange(m + 1, dtype=float) * h), dtype=float)
         mids = np.asarray(sf(attachment + (k + 0.5) * h), dtype=float)
@@ -120,7 +120,10 @@ def discretise(sf, h: float, n: int, attachment: float = 0.0, limit: float = mat
         if sharp.size:
             sd[sharp] = _bucket_means(sf, attachment + sharp * h, h, _EVEN_PIECES)
         sd[0] = _bucket_means(sf, np.array([float(attachment)]), h, _GEOMETRIC_PIECES)[0]
-    sd = np.minimum.accumulate(np.minimum(np.maximum(sd, 0.0), 1.0))  # guard against non-monotone round-off in scipy's sf
+    np.maximum(sd, 0.0, out=sd)
+    np.minimum(sd, 1.0, out=sd)
+    if not (sd[1:] <= sd[:-1]).all():  # guard against non-monotone round-off in scipy's sf (a sequential scan: only when needed)
+        sd = np.minimum.accumulate(sd)
     probs = np.zeros(n)
     probs[0] = 1.0 - sd[0]
     probs[1:m] = sd[:-1][: m - 1] - sd[1:m]

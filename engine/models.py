@@ -620,9 +620,14 @@ def _grid_distribution(bucket: float, agg: np.ndarray, beyond: float, top: float
         values, probs = np.arange(count, dtype=float) * bucket, agg[:count]
     else:
         values, probs = np.flatnonzero(nz) * bucket, agg[nz]
-    if beyond > 0:
-        values, probs = np.append(values, top), np.append(probs, beyond)
-        return LossDistribution(values, _sf_from_probs(probs), float(beyond), float(top))
+    if beyond > 0:  # the mass at or beyond the top as its last atom
+        with_top = np.empty(count + 1)
+        with_top[:count] = values
+        with_top[count] = top
+        held = np.empty(count + 1)
+        held[:count] = probs
+        held[count] = beyond
+        return LossDistribution(with_top, _sf_from_probs(held), float(beyond), float(top))
     return LossDistribution(values, _sf_from_probs(probs))
 
 

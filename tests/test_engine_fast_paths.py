@@ -298,3 +298,30 @@ def test_priced_table_from_blocks_equals_pandas_constructor(monkeypatch):
         f["extra"] = p["extra"] = 1.0
         assert f.equals(p)
     assert list(fast[0].columns) == ["distortion"] + pricing.COLUMNS + ["extra"]
+
+
+@pytest.mark.parametrize("method", ["moment", "rounding"])
+def test_discretise_guards_a_survival_function_that_is_not_monotone(method):
+    """Round-off can make a library's sf tick up or leave [0, 1]: the bucket levels are clipped and made
+    non-increasing (the running minimum), so no probability is negative; the sf's own array is not changed."""
+    base = lw.lognormal(mean=1e5, cv=1.0).sf
+    kept = {}
+
+    def wobbly(x):
+        s = np.asarray(base(x), dtype=float).copy()
+        s[5::7] *= 1.05 if method == "rounding" else 1.5  # upward ticks, larger than the fall between points
+        s[0] = 1.0 + 1e-15  # above 1
+        kept["last"] = s
+        kept["copy"] = s.copy()
+        return s
+
+    probs, tail = discretise(wobbly, 2e3, 512, method=method)
+    assert (probs >= 0).all() and abs(probs.sum() + tail - 1.0) < 1e-12
+    assert np.array_equal(kept["last"], kept["copy"])  # the sf's result is read, never written
+    if method == "rounding":  # the levels are the sf at the midpoints: the guard's result written out
+        levels = np.minimum.accumulate(np.clip(kept["copy"], 0.0, 1.0))
+        want = np.concatenate([[1.0 - levels[0]], levels[:-1] - levels[1:]])
+        np.testing.assert_array_equal(probs, want)
+        assert tail == levels[-1]
+    else:  # bucket means of the ticked sf, then the running minimum: some buckets get nothing
+        assert (probs[1:] == 0).sum() >= 3

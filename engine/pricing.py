@@ -251,6 +251,11 @@ def _mean_note(diag) -> str:
 
 
 def _warning(prem, err, disc, mean_note) -> list[str]:
+    with np.errstate(invalid="ignore"):
+        scale = np.where(np.isfinite(prem), np.abs(prem), 0.0)
+        quiet = ~((err > BEYOND_TOLERANCE * scale) | (disc > DISCRETISATION_TOLERANCE * scale))
+    if quiet.all() and not any(mean_note):  # the usual case: nothing to say on any row
+        return [""] * len(mean_note)
     out = []
     for p, e, q, m in zip(prem, err, disc, mean_note):
         reasons = []

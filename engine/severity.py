@@ -52,7 +52,8 @@ class Severity:
     fast_sf: object = field(default=None, compare=False, repr=False)  # same values as dist.sf, without scipy's checks
 
     def __post_init__(self):
-        low = float(self.dist.support()[0])
+        low, high = (float(x) for x in self.dist.support())
+        self.__dict__["upper"] = high  # what the cached property computes: scipy's support() checks its arguments
         if not low >= 0.0:
             raise InputError("severity", f"{self.name} must be supported on [0, inf); its support starts at {low:g}")
 

@@ -350,28 +350,33 @@ def _pass(group, items, bounds, rows, which, specs):
     sums to ``middle`` and sets the levels at the bounds held here (see :func:`_integrals`)."""
     cols, j_lo, j_hi, middle, lev_lo, lev_hi = bounds
     need_squares = any(power == 1 for _, power in specs)
-    sfs, widths, squares, where = [], [], [], []
-    at = 0
+    # each region's levels, segment widths (and half differences of squares) written side by side, plus one
+    # slot of width 0 after it: where a pair ending at b1 stops
+    at = sum(b1 - b0 + 1 for _, b0, b1, _ in group)
+    s = np.empty(at)
+    width = np.zeros(at)
+    square = np.zeros(at) if need_squares else None
+    where = []
+    interior = True  # all of s in (0, 1): each region is non-increasing, so its ends decide
+    pos = 0
     for i, b0, b1, _ in group:
         d = items[i][0]
-        v, n = d.values, d.values.size
-        s = d.sf[b0:b1]
-        top = min(b1, n - 1)  # segments end at the last atom
-        w = np.zeros(b1 - b0 + 1)  # one more slot, of width 0: where a pair ending at b1 stops
-        w[: top - b0] = v[b0 + 1 : top + 1] - v[b0:top]
-        sfs += [s, s[-1:]]  # the slot's level: the region's own last one, so g sees no new value
-        widths.append(w)
-        if need_squares:
-            q = np.zeros(b1 - b0 + 1)
-            q[: top - b0] = 0.5 * (v[b0 + 1 : top + 1] ** 2 - v[b0:top] ** 2)
-            squares.append(q)
-        where.append(at - b0)  # atom a of this region sits at a + where in the pass
-        at += b1 - b0 + 1
-    s = np.concatenate(sfs)
-    width = np.concatenate(widths) if len(widths) > 1 else widths[0]
-    square = (np.concatenate(squares) if len(squares) > 1 else squares[0]) if need_squares else None
+        v = d.values
+        level = d.sf[b0:b1]
+        end = pos + b1 - b0
+        s[pos:end] = level
+        s[end] = level[-1]  # the slot's level: the region's own last one, so g sees no new value
+        interior = interior and level[0] < 1.0 and level[-1] > 0.0
+        k = min(b1, v.size - 1) - b0  # segments end at the last atom
+        if k > 0:
+            np.subtract(v[b0 + 1 : b0 + k + 1], v[b0 : b0 + k], out=width[pos : pos + k])
+            if need_squares:
+                sq = v[b0 : b0 + k + 1] ** 2
+                np.subtract(sq[1:], sq[:-1], out=square[pos : pos + k])
+                square[pos : pos + k] *= 0.5
+        where.append(pos - b0)  # atom a of this region sits at a + where in the pass
+        pos = end + 1
     levels = np.empty((len(rows), at))
-    interior = all(x[0] < 1.0 and x[-1] > 0.0 for x in sfs)  # each piece non-increasing: all of s in (0, 1)
     for r, g in enumerate(rows.values()):
         if g is None:
             levels[r] = s

@@ -441,7 +441,22 @@ def section_towers(rep: Report, quick: bool, profile: bool):
     # --- Monte Carlo peer ----------------------------------------------------------
     mc_times = {"aggregate": [], "occurrence": []}
     mc_vals = {"aggregate": [], "occurrence": []}
+    # the engine timed again right before and after each Monte Carlo seed: the ratio compares runs of the
+    # same minutes, so a slow spell of the shared machine during one block does not decide it
+    beside = {"aggregate": [], "occurrence": []}
+    beside_runs = 3
+    stock_inputs(2 * 2 * beside_runs * len(seeds) + 2)
+
+    def time_beside():
+        for name, tower in (("aggregate", AGG_TOWER), ("occurrence", OCC_TOWER)):
+            for _ in range(beside_runs):
+                gc.collect()
+                t = time.perf_counter()
+                engine_tower(tower)
+                beside[name].append(time.perf_counter() - t)
+
     for s in seeds:
+        time_beside()
         gc.collect()
         t = time.perf_counter()
         year, claims = mc_simulate(s, years)
@@ -453,11 +468,14 @@ def section_towers(rep: Report, quick: bool, profile: bool):
         mc_vals["occurrence"].append(mc_occ_tower(year, claims, years))
         mc_times["occurrence"].append(t_sim + time.perf_counter() - t)
         del year, claims
+        time_beside()
 
     rep.add(f"Engine: median of {repeat} runs, each from a fresh model (frequency and severity objects never used "
             f"before, made ahead like the Monte Carlo peer's parameters; FFT build included) to the priced table "
             f"of 10 layers x 5 distortions, in one `price_layers` call. Monte Carlo: {years:,} years, "
-            f"{len(seeds)} seeds (time: median; error: root mean square over the seeds). Raw transform: "
+            f"{len(seeds)} seeds (time: median; error: root mean square over the seeds), each seed's run with "
+            f"{beside_runs} cold engine calls of each tower right before and after it, the engine time its ratio "
+            f"uses (the Monte Carlo runs take seconds, too long to interleave call by call). Raw transform: "
             f"`np.fft.irfft(exp(5 (np.fft.rfft(f) - 1)))` at the engine's padded transform lengths, one per grid it "
             f"computes (two for a split ground-up grid: body and coarse whole; the engine computes each twice, "
             f"the second time for the discretisation-error estimate). "
@@ -477,12 +495,14 @@ def section_towers(rep: Report, quick: bool, profile: bool):
         e_mc = {k: float(np.sqrt(np.mean([rel(v[k][top], ref[k][top]) ** 2 for v in mc_vals[name]]))) for k in MEASURES}
         worst_ratio = min((e_mc[k] / e_eng[k]) if e_eng[k] > 0 else math.inf for k in MEASURES)
         t_noest = median(times[key + "_noest"])
-        rows.append([name, n_grid, ms(t_eng), ms(t_noest), ms(t_warm), ms(t_raw), f"{t_eng / t_raw:.1f}", ms(t_mc), f"{t_mc / t_eng:,.0f}",
-                     f"{max(e_eng.values()):.1e}", f"{max(e_mc.values()):.1e}", f"{worst_ratio:,.0f}"])
-        rep.data.setdefault("fs", {})[name] = dict(t_eng=t_eng, t_raw=t_raw, t_mc=t_mc, worst_ratio=worst_ratio, e_eng=e_eng, e_mc=e_mc,
-                                                   t_noest=t_noest, t_warm=t_warm)
+        t_beside = median(beside[name])
+        rows.append([name, n_grid, ms(t_eng), ms(t_noest), ms(t_warm), ms(t_raw), f"{t_eng / t_raw:.1f}", ms(t_mc), ms(t_beside),
+                     f"{t_mc / t_beside:,.0f}", f"{max(e_eng.values()):.1e}", f"{max(e_mc.values()):.1e}", f"{worst_ratio:,.0f}"])
+        rep.data.setdefault("fs", {})[name] = dict(t_eng=t_eng, t_raw=t_raw, t_mc=t_mc, t_beside=t_beside, worst_ratio=worst_ratio,
+                                                   e_eng=e_eng, e_mc=e_mc, t_noest=t_noest, t_warm=t_warm)
     rep.table(["tower", "grid points", "engine ms (cold)", "... without the discretisation-error estimate", "engine ms (cached model)", "raw transform ms", "engine / raw",
-               "Monte Carlo ms", "MC / engine", "top layer: engine worst rel. error", "top layer: MC worst rel. error",
+               "Monte Carlo ms", "engine ms (cold, timed beside the Monte Carlo runs)", "MC / engine (beside)",
+               "top layer: engine worst rel. error", "top layer: MC worst rel. error",
                "top layer: MC error / engine error (worst measure)"], rows)
 
     t_uniform = median(times["agg_raw_uniform"])
@@ -571,7 +591,9 @@ def section_towers(rep: Report, quick: bool, profile: bool):
     for name in ("aggregate", "occurrence"):
         r = fs[name]
         rep.target(f"{name} tower under 30 ms in-process", r["t_eng"] < 0.030, f"{ms(r['t_eng'])} ms (median, cold model)")
-        rep.target(f"{name} tower >= 50x faster than Monte Carlo", r["t_mc"] / r["t_eng"] >= 50, f"{r['t_mc'] / r['t_eng']:,.0f}x")
+        rep.target(f"{name} tower >= 50x faster than Monte Carlo", r["t_mc"] / r["t_beside"] >= 50,
+                   f"{r['t_mc'] / r['t_beside']:,.0f}x (against the engine timed beside the Monte Carlo runs; "
+                   f"{r['t_mc'] / r['t_eng']:,.0f}x against the main block's median)")
         rep.target(f"{name} tower >= 10x more accurate on the top layer", r["worst_ratio"] >= 10,
                    f"{r['worst_ratio']:,.0f}x (worst of expected loss and the five prices)")
         rep.target(f"{name} tower within 5x of the raw transform", r["t_eng"] / r["t_raw"] <= 5, f"{r['t_eng'] / r['t_raw']:.1f}x")

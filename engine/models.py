@@ -26,7 +26,7 @@ from scipy import integrate
 
 from .distribution import LossDistribution, _sf_from_probs
 from .errors import InputError, as_array, as_float
-from .fourier import MAX_GRID_LENGTH, METHODS, aggregate, discretise, nice_bucket
+from .fourier import MAX_GRID_LENGTH, METHODS, aggregate, aggregate_rows, discretise, nice_bucket
 from .frequency import FixedCount, Frequency
 from .layers import Layer
 from .severity import Severity, integral
@@ -44,6 +44,7 @@ SPLIT_FACTOR = 4  # split only grids at least this many times longer than their 
 COARSE_PER_BODY = 2  # the coarse grid of a split one has this many times the body's points
 GROUND_UP_RESOLUTION = 64  # automatic ground-up grids: bucket at most about min(mean, 90% quantile) / 64 (median if no mean)
 _FAR_TOP = 1e300
+BATCH_POINTS = 2**21  # transforms done together: at most this many points of scratch (16 MB real, as much complex)
 
 
 def _pow2_points(span: float, low: int, high: int) -> int:
@@ -73,6 +74,10 @@ class _Cache:
                 self._items.popitem(last=False)
         return value
 
+    def has(self, key) -> bool:
+        with self._lock:
+            return key in self._items
+
     def nbytes(self) -> int:
         with self._lock:
             return sum(d.values.nbytes + d.sf.nbytes for d in self._items.values())
@@ -95,6 +100,17 @@ class LossModel:
         compute only the part of its grid below it; the distribution returned
         is the same there and holds the rest at a top at or above ``below``.
         """
+        a, l = self._terms(occ_attachment, occ_limit)
+        return self._annual_cached(a, l, float(below))
+
+    def annual_pairs(self, requests) -> list:
+        """``[(annual(a, l, below=b), annual_coarse(a, l, below=b)) for a, l, b in requests]``: each set of
+        terms' distribution and its error-estimate twin, what a tower's prices read. A grid model may
+        build several of them together."""
+        return [(self.annual(a, l, below=b), self.annual_coarse(a, l, below=b)) for a, l, b in requests]
+
+    def _terms(self, occ_attachment, occ_limit) -> tuple[float, float]:
+        """The per-occurrence terms checked: (attachment, limit) as floats."""
         a = as_float(occ_attachment, "attachment", low=0.0)
         l = as_float(occ_limit, "limit", low=0.0, low_open=True, allow_inf=True)
         if (a > 0 or math.isfinite(l)) and not self.occurrence_terms:
@@ -103,7 +119,7 @@ class LossModel:
                 f"a {type(self).__name__} holds annual totals, so per-occurrence terms cannot apply; "
                 "use an aggregate layer, or a year-event table or frequency-severity model",
             )
-        return self._annual_cached(a, l, float(below))
+        return a, l
 
     def _annual_cached(self, a, l, below):
         return self._cache.get((a, l), lambda: self._annual(a, l))
@@ -410,10 +426,7 @@ class FrequencySeverity(LossModel):
         _, points, probs, tail, _, stop = piece
         agg, beyond = aggregate(self.frequency.pgf_in_place, *_on_points(probs, tail, points), self.padding,
                                 self.frequency.max_count)
-        if stop < points:
-            agg = agg[:stop]
-            beyond = max(1.0 - float(agg.sum()), 0.0)
-        return agg, beyond
+        return _used(agg, beyond, points, stop)
 
     def _body(self, a, l) -> LossDistribution:
         """The distribution below the body's top of a split grid, the rest held at that top."""
@@ -509,6 +522,60 @@ class FrequencySeverity(LossModel):
         """True when the severity's mean is infinite: an unlimited layer then has an infinite expected loss."""
         return not self.severity.finite_mean
 
+    def annual_pairs(self, requests) -> list:
+        """See :meth:`LossModel.annual_pairs`. Terms on an ordinary (unsplit) grid with neither
+        distribution cached are built together: the severity of each discretised, and all the transforms
+        of one length (the fine grids, the error-estimate grids) done as one 2-D transform, which costs
+        less than one by one. The same distributions, bit for bit."""
+        todo = {}
+        for a, l, _ in requests:
+            a, l = self._terms(a, l)
+            if (a, l) not in todo and self._body_top(a, l) == math.inf and not (
+                    self._cache.has((a, l)) or self._cache.has(("coarse", a, l))):
+                todo[(a, l)] = None
+        if len(todo) > 1:
+            pieces = []
+            for a, l in todo:
+                bucket, points, sev_points, start, stop = self._piece_specs(a, l)[0]
+                probs, tail = discretise(self.severity.sf, bucket, sev_points, a, l, self.method)
+                fine = (bucket, points, probs, tail, start, stop)
+                pieces += [fine, _merged(fine, l)]
+            built = iter(self._transforms(pieces))
+            for a, l in todo:
+                (fine, fine_out), (twin, twin_out) = next(built), next(built)
+                dist = self._with_diagnostics(self._on_grid(fine, *fine_out), fine, a, l)
+                coarse = self._on_grid(twin, *twin_out)
+                # kept for later reads too; returned from here, so an LRU too small for the tower loses nothing
+                todo[(a, l)] = (self._cache.get((a, l), lambda: dist), self._cache.get(("coarse", a, l), lambda: coarse))
+        out = []
+        for a, l, below in requests:
+            pair = todo.get(self._terms(a, l))
+            out.append(pair if pair is not None else (self.annual(a, l, below=below), self.annual_coarse(a, l, below=below)))
+        return out
+
+    def _transforms(self, pieces) -> list:
+        """[(piece, self._transform(piece)) for piece in pieces], the pieces of one transform length
+        transformed together."""
+        by_points = {}
+        for k, piece in enumerate(pieces):
+            by_points.setdefault(piece[1], []).append(k)
+        out = [None] * len(pieces)
+        for points, same in by_points.items():
+            rows = max(BATCH_POINTS // (points * self.padding), 1)  # transform scratch of at most BATCH_POINTS
+            for first in range(0, len(same), rows):
+                self._transform_rows(pieces, same[first : first + rows], points, out)
+        return out
+
+    def _transform_rows(self, pieces, ks, points, out):
+        if len(ks) == 1:
+            out[ks[0]] = (pieces[ks[0]], self._transform(pieces[ks[0]]))
+            return
+        ext = [_on_points(pieces[k][2], pieces[k][3], points) for k in ks]
+        rows = aggregate_rows(self.frequency.pgf_in_place, np.array([p for p, _ in ext]), [t for _, t in ext],
+                              self.padding, self.frequency.max_count)
+        for k, (agg, beyond) in zip(ks, rows):
+            out[k] = (pieces[k], _used(agg, beyond, points, pieces[k][5]))
+
     def annual_coarse(self, occ_attachment: float = 0.0, occ_limit: float = math.inf, *, below: float = math.inf) -> LossDistribution:
         """The annual distribution on the same grid with the severity discretised at twice the bucket.
 
@@ -587,6 +654,14 @@ def _merged(piece, l: float) -> tuple:
     if end % 2 == 0 and points % 2 == 0 and start % 2 == 0 and stop % 2 == 0 and last % 2 == 0:
         return (2.0 * bucket, points // 2, ext[:end:2], float(ext[end]), start // 2, stop // 2)
     return (bucket, points, ext[:end], float(ext[end]), start, stop)
+
+
+def _used(agg: np.ndarray, beyond: float, points: int, stop: int) -> tuple:
+    """The transform's result on the points a piece uses (below ``stop``), and the probability beyond them."""
+    if stop < points:
+        agg = agg[:stop]
+        beyond = max(1.0 - float(agg.sum()), 0.0)
+    return agg, beyond
 
 
 def _on_points(probs: np.ndarray, tail: float, points: int) -> tuple:

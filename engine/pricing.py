@@ -154,10 +154,10 @@ def price_layers(model: LossModel, layers, distortion) -> pd.DataFrame:
         a = np.array([lays[i].agg_attachment for i in idx])
         lim = np.array([lays[i].agg_limit for i in idx])
         below = float(np.max(a + lim))  # nothing above the highest exhaustion point is read
-        u = model.annual(oa, ol, below=below)
-        # right after the fine one, while the model still holds its discretised severity
-        coarse = model.annual_coarse(oa, ol, below=below)
-        groups.append((oa, ol, idx, a, lim, u, coarse))
+        groups.append((oa, ol, idx, a, lim, below))
+    # every group's distribution and its error-estimate twin (a grid model builds them together)
+    pairs = model.annual_pairs([(oa, ol, below) for oa, ol, _, _, _, below in groups])
+    groups = [(oa, ol, idx, a, lim, u, coarse) for (oa, ol, idx, a, lim, _), (u, coarse) in zip(groups, pairs)]
     # every group's layers, and their error-estimate twins, in shared passes
     profiles = layer_profiles([(u, a, lim) for _, _, _, a, lim, u, _ in groups]
                               + [(c, a, lim) for _, _, _, a, lim, _, c in groups if c is not None], gs)

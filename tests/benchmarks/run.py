@@ -168,8 +168,8 @@ def engine_tower(tower, model=None):
 def engine_tower_without_estimate(tower):
     """The same call with the discretisation-error estimate (a second, coarser grid) switched off."""
     m = fresh_model()
-    if hasattr(m, "annual_coarse"):
-        object.__setattr__(m, "annual_coarse", lambda *args, **kw: None)
+    if hasattr(m, "annual_coarse"):  # every distribution without its twin (each built alone)
+        object.__setattr__(m, "annual_pairs", lambda requests: [(m.annual(a, l, below=b), None) for a, l, b in requests])
     return lw.price_layers(m, tower, DISTORTIONS)
 
 
@@ -340,7 +340,8 @@ def bare_work(tower) -> dict:
     """The bare numerical work of one cold engine call on ``tower``, captured from a call and redone alone.
 
     Returns name -> callable: "transforms" (tilted rfft, pgf, irfft at every length the engine
-    transforms, error-estimate grids included), "severity" (the survival function on every array the
+    transforms, error-estimate grids included; those it does together as one 2-D transform are redone
+    one by one), "severity" (the survival function on every array the
     discretisation evaluates it on) and "distortions" (each distortion on the survival levels of each
     integral pass). What the engine spends beyond their sum is everything else: Python, the small
     numpy steps between them, the table.
@@ -348,13 +349,17 @@ def bare_work(tower) -> dict:
     import layerwise.engine.models as models_mod
 
     lengths, sf_inputs, levels = [], [], []
-    aggregate, discretise = models_mod.aggregate, models_mod.discretise
+    aggregate, aggregate_rows, discretise = models_mod.aggregate, models_mod.aggregate_rows, models_mod.discretise
     classes = {type(g) for g in DISTORTIONS.values()}
     saved = {cls: cls.__dict__.get("inside") for cls in classes}
 
     def counting_aggregate(pgf, probs, tail, padding=2, max_count=math.inf):
         lengths.append((probs.size, max(int(padding), 2)))
         return aggregate(pgf, probs, tail, padding, max_count)
+
+    def counting_rows(pgf, probs, tails, padding=2, max_count=math.inf):  # several at once: one each
+        lengths.extend([(probs.shape[1], max(int(padding), 2))] * probs.shape[0])
+        return aggregate_rows(pgf, probs, tails, padding, max_count)
 
     def counting_discretise(sf, *args, **kw):
         def recorded(x):
@@ -368,13 +373,13 @@ def bare_work(tower) -> dict:
             return inside(self, s)
         return wrapped
 
-    models_mod.aggregate, models_mod.discretise = counting_aggregate, counting_discretise
+    models_mod.aggregate, models_mod.aggregate_rows, models_mod.discretise = counting_aggregate, counting_rows, counting_discretise
     for cls in classes:
         cls.inside = recording(cls.inside)
     try:
         engine_tower(tower)
     finally:
-        models_mod.aggregate, models_mod.discretise = aggregate, discretise
+        models_mod.aggregate, models_mod.aggregate_rows, models_mod.discretise = aggregate, aggregate_rows, discretise
         for cls, inside in saved.items():
             if inside is None:
                 del cls.inside
@@ -512,7 +517,8 @@ def section_towers(rep: Report, quick: bool, profile: bool):
     rep.add()
 
     rep.add("Where the time goes: the engine's bare numerical work, captured from one cold call and redone alone "
-            "in the same interleaved runs: every transform it computes (error-estimate grids included), the "
+            "in the same interleaved runs: every transform it computes (error-estimate grids included; one by one, "
+            "where the engine does those of one length as one 2-D transform), the "
             "severity's survival function on every point the discretisation evaluates, and every distortion on "
             "the survival levels of the integral passes. The rest is Python, the small numpy steps between them "
             "and the 21-column table. The target's yardstick, the raw transform, is one transform per layer's grid.")

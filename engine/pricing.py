@@ -253,21 +253,21 @@ def _mean_note(diag) -> str:
 def _warning(prem, err, disc, mean_note) -> list[str]:
     with np.errstate(invalid="ignore"):
         scale = np.where(np.isfinite(prem), np.abs(prem), 0.0)
-        quiet = ~((err > BEYOND_TOLERANCE * scale) | (disc > DISCRETISATION_TOLERANCE * scale))
-    if quiet.all() and not any(mean_note):  # the usual case: nothing to say on any row
+        beyond_over = err > BEYOND_TOLERANCE * scale
+        disc_over = disc > DISCRETISATION_TOLERANCE * scale
+    if not (beyond_over.any() or disc_over.any() or any(mean_note)):  # the usual case: nothing to say on any row
         return [""] * len(mean_note)
     out = []
-    for p, e, q, m in zip(prem, err, disc, mean_note):
+    for p, e, q, m, beyond_hit, disc_hit in zip(prem, err, disc, mean_note, beyond_over, disc_over):
         reasons = []
-        scale = abs(p) if math.isfinite(p) else 0.0
-        if e > BEYOND_TOLERANCE * scale:
+        if beyond_hit:
             if math.isinf(e):
                 reasons.append("the layer reaches past the grid top and its price there may be infinite; "
                                "the premium shown is only the part below the top")
             else:
                 reasons.append(f"probability beyond the grid top may change the premium by up to {e:.3g} "
                                f"({_rel(e, p)} of it; tolerance {BEYOND_TOLERANCE:g}): give the model a longer grid")
-        if q > DISCRETISATION_TOLERANCE * scale:
+        if disc_hit:
             reasons.append(f"discretisation error estimate {q:.3g} ({_rel(q, p)} of the premium; tolerance "
                            f"{DISCRETISATION_TOLERANCE:g}): give the model a smaller bucket or a longer grid")
         if m:

@@ -20,6 +20,7 @@ import math
 import threading
 from collections import OrderedDict
 from dataclasses import dataclass, field
+from typing import NamedTuple
 
 import numpy as np
 from scipy import integrate
@@ -45,6 +46,17 @@ COARSE_PER_BODY = 2  # the coarse grid of a split one has this many times the bo
 GROUND_UP_RESOLUTION = 64  # automatic ground-up grids: bucket at most about min(mean, 90% quantile) / 64 (median if no mean)
 _FAR_TOP = 1e300
 BATCH_POINTS = 2**21  # transforms done together: at most this many points of scratch (16 MB real, as much complex)
+
+
+class _Plan(NamedTuple):
+    """A model's grid for one set of per-occurrence terms (see :meth:`FrequencySeverity._piece_specs`)."""
+
+    bucket: float
+    points: int  # grid_length
+    body: int  # points of the fine part (= points unless the grid is split)
+    resolution: tuple  # ((start, bucket), ...)
+    specs: tuple  # per transformed grid: (bucket, transform points, severity points, start, stop)
+    body_top: float  # where a split grid's coarse part starts (inf if not split)
 
 
 def _pow2_points(span: float, low: int, high: int) -> int:
@@ -228,7 +240,8 @@ class FrequencySeverity(LossModel):
     # -- grid choice ---------------------------------------------------------
     def grid(self, occ_attachment: float = 0.0, occ_limit: float = math.inf) -> tuple[float, int]:
         """(bucket, grid_length) used for the given per-occurrence terms."""
-        return self._plan(float(occ_attachment), float(occ_limit))[:2]
+        plan = self._plan(float(occ_attachment), float(occ_limit))
+        return plan.bucket, plan.points
 
     def body_points(self, occ_attachment: float = 0.0, occ_limit: float = math.inf) -> int:
         """Points of the fine part of the grid: ``grid()[1]`` unless the grid is split (see :meth:`annual`).
@@ -240,11 +253,11 @@ class FrequencySeverity(LossModel):
         used only above the body. Both are far shorter transforms than one
         grid of the full length at the fine bucket.
         """
-        return self._plan(float(occ_attachment), float(occ_limit))[2]
+        return self._plan(float(occ_attachment), float(occ_limit)).body
 
-    def _plan(self, a: float, l: float) -> tuple:
-        """(bucket, grid_length, body points, resolution, piece specs, body top) for the terms, remembered
-        on the model: they cost several scipy quantiles, and every build reads them several times."""
+    def _plan(self, a: float, l: float) -> _Plan:
+        """The grid for the terms, remembered on the model: it costs several scipy quantiles, and every
+        build reads it several times."""
         plans = self.__dict__.get("_plans")
         if plans is None:
             plans = {}
@@ -261,7 +274,7 @@ class FrequencySeverity(LossModel):
                 parts = ((0.0, h), (body * h, wide))
                 points = int(round(n * h / wide))
                 specs = ((h, 3 * body // 2, body, 0, body), (wide, points, points, int(round(body * h / wide)), points))
-            plan = plans[(a, l)] = (h, n, body, parts, specs, parts[1][0] if len(parts) > 1 else math.inf)
+            plan = plans[(a, l)] = _Plan(h, n, body, parts, specs, parts[1][0] if len(parts) > 1 else math.inf)
         return plan
 
     def _grid(self, occ_attachment: float, occ_limit: float) -> tuple[float, int]:
@@ -350,7 +363,7 @@ class FrequencySeverity(LossModel):
         ``((0.0, grid()[0]),)`` for an ordinary grid; a split one (see
         :meth:`body_points`) adds the coarse bucket from the body's top.
         """
-        return self._plan(float(occ_attachment), float(occ_limit))[3]
+        return self._plan(float(occ_attachment), float(occ_limit)).resolution
 
     def uniform_grid(self) -> "FrequencySeverity":
         """This model on one uniform grid of ``grid()`` (never split), for sums of units on a common grid.
@@ -384,7 +397,7 @@ class FrequencySeverity(LossModel):
 
     def _body_top(self, a, l) -> float:
         """Top of the body of a split grid (inf when the grid is not split)."""
-        return self._plan(a, l)[5]
+        return self._plan(a, l).body_top
 
     def _piece_specs(self, a, l) -> tuple:
         """(bucket, transform points, severity points, first used index, end of used indices) per grid.
@@ -396,7 +409,7 @@ class FrequencySeverity(LossModel):
         stays about 1e-9 of the survival there) and the whole range at the
         coarse bucket, used from the body's top.
         """
-        return self._plan(a, l)[4]
+        return self._plan(a, l).specs
 
     def _piece(self, a, l, i: int, *, release: bool = False) -> tuple:
         """Grid ``i`` of :meth:`_piece_specs` with its discretised severity:
@@ -527,9 +540,9 @@ class FrequencySeverity(LossModel):
         distribution cached are built together: the severity of each discretised, and all the transforms
         of one length (the fine grids, the error-estimate grids) done as one 2-D transform, which costs
         less than one by one. The same distributions, bit for bit."""
+        terms = [self._terms(a, l) for a, l, _ in requests]
         todo = {}
-        for a, l, _ in requests:
-            a, l = self._terms(a, l)
+        for a, l in terms:
             if (a, l) not in todo and self._body_top(a, l) == math.inf and not (
                     self._cache.has((a, l)) or self._cache.has(("coarse", a, l))):
                 todo[(a, l)] = None
@@ -540,41 +553,36 @@ class FrequencySeverity(LossModel):
                 probs, tail = discretise(self.severity.sf, bucket, sev_points, a, l, self.method)
                 fine = (bucket, points, probs, tail, start, stop)
                 pieces += [fine, _merged(fine, l)]
-            built = iter(self._transforms(pieces))
+            built = iter(zip(pieces, self._transforms(pieces)))
             for a, l in todo:
                 (fine, fine_out), (twin, twin_out) = next(built), next(built)
                 dist = self._with_diagnostics(self._on_grid(fine, *fine_out), fine, a, l)
                 coarse = self._on_grid(twin, *twin_out)
                 # kept for later reads too; returned from here, so an LRU too small for the tower loses nothing
                 todo[(a, l)] = (self._cache.get((a, l), lambda: dist), self._cache.get(("coarse", a, l), lambda: coarse))
-        out = []
-        for a, l, below in requests:
-            pair = todo.get(self._terms(a, l))
-            out.append(pair if pair is not None else (self.annual(a, l, below=below), self.annual_coarse(a, l, below=below)))
-        return out
+        return [todo.get(t) or (self.annual(*t, below=below), self.annual_coarse(*t, below=below))
+                for t, (_, _, below) in zip(terms, requests)]
 
     def _transforms(self, pieces) -> list:
-        """[(piece, self._transform(piece)) for piece in pieces], the pieces of one transform length
-        transformed together."""
+        """``[self._transform(piece) for piece in pieces]``, the pieces of one transform length transformed
+        together (in 2-D transforms of at most ``BATCH_POINTS`` of scratch)."""
         by_points = {}
         for k, piece in enumerate(pieces):
             by_points.setdefault(piece[1], []).append(k)
         out = [None] * len(pieces)
         for points, same in by_points.items():
-            rows = max(BATCH_POINTS // (points * self.padding), 1)  # transform scratch of at most BATCH_POINTS
+            rows = max(BATCH_POINTS // (points * self.padding), 1)
             for first in range(0, len(same), rows):
-                self._transform_rows(pieces, same[first : first + rows], points, out)
+                ks = same[first : first + rows]
+                if len(ks) == 1:
+                    out[ks[0]] = self._transform(pieces[ks[0]])
+                    continue
+                ext = [_on_points(pieces[k][2], pieces[k][3], points) for k in ks]
+                results = aggregate_rows(self.frequency.pgf_in_place, np.array([p for p, _ in ext]), [t for _, t in ext],
+                                         self.padding, self.frequency.max_count)
+                for k, (agg, beyond) in zip(ks, results):
+                    out[k] = _used(agg, beyond, points, pieces[k][5])
         return out
-
-    def _transform_rows(self, pieces, ks, points, out):
-        if len(ks) == 1:
-            out[ks[0]] = (pieces[ks[0]], self._transform(pieces[ks[0]]))
-            return
-        ext = [_on_points(pieces[k][2], pieces[k][3], points) for k in ks]
-        rows = aggregate_rows(self.frequency.pgf_in_place, np.array([p for p, _ in ext]), [t for _, t in ext],
-                              self.padding, self.frequency.max_count)
-        for k, (agg, beyond) in zip(ks, rows):
-            out[k] = (pieces[k], _used(agg, beyond, points, pieces[k][5]))
 
     def annual_coarse(self, occ_attachment: float = 0.0, occ_limit: float = math.inf, *, below: float = math.inf) -> LossDistribution:
         """The annual distribution on the same grid with the severity discretised at twice the bucket.

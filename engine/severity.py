@@ -50,10 +50,12 @@ class Severity:
     params: tuple
     dist: object = field(compare=False, repr=False)
     fast_sf: object = field(default=None, compare=False, repr=False)  # same values as dist.sf, without scipy's checks
+    # top of the support (inf for unbounded severities), read once: scipy's support() checks its arguments
+    upper: float = field(init=False, compare=False, repr=False)
 
     def __post_init__(self):
         low, high = (float(x) for x in self.dist.support())
-        self.__dict__["upper"] = high  # what the cached property computes: scipy's support() checks its arguments
+        object.__setattr__(self, "upper", high)
         if not low >= 0.0:
             raise InputError("severity", f"{self.name} must be supported on [0, inf); its support starts at {low:g}")
 
@@ -63,11 +65,6 @@ class Severity:
 
     def sf(self, x):
         return self.dist.sf(x) if self.fast_sf is None else self.fast_sf(x)
-
-    @functools.cached_property
-    def upper(self) -> float:
-        """Top of the support (inf for unbounded severities; computed once: scipy's support() checks its arguments)."""
-        return float(self.dist.support()[1])
 
     def cdf(self, x):
         return self.dist.cdf(x)

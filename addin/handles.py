@@ -634,7 +634,9 @@ def _measure(obj) -> int:
     if isinstance(obj, LossModel):
         n += int(obj.cache_nbytes())
         if not hasattr(obj, "_data_nbytes"):
-            n += sum(int(v.nbytes) for v in vars(obj).values() if isinstance(v, np.ndarray))
+            # a snapshot first (one C-level copy, atomic under the GIL): another thread pricing on the model
+            # may add its lazily kept attributes (grid plans, the last discretised severity) meanwhile
+            n += sum(int(v.nbytes) for v in tuple(vars(obj).values()) if isinstance(v, np.ndarray))
     elif isinstance(obj, TableDistortion):
         n += 16 * len(obj.s) * 2
     return n

@@ -238,3 +238,28 @@ def test_diagnostics_read_from_many_threads_at_once_are_complete():
                     assert s == full
     finally:
         sys.setswitchinterval(old)
+
+
+def test_measuring_a_model_while_another_thread_adds_to_it():
+    """The cache measures a model (its arrays) while another thread pricing on it keeps new attributes
+    (grid plans, the last discretised severity): measuring must not fail on the attributes changing."""
+    model = lw.FrequencySeverity(lw.poisson(2.0), lw.lognormal(mean=1e5, cv=1.0))
+    for k in range(50):
+        object.__setattr__(model, f"_array{k}", np.zeros(3))
+    stop = threading.Event()
+
+    def churn():
+        k = 0
+        while not stop.is_set():
+            object.__setattr__(model, f"_kept{k % 200}", None)
+            model.__dict__.pop(f"_kept{(k + 100) % 200}", None)
+            k += 1
+
+    worker = threading.Thread(target=churn)
+    worker.start()
+    try:
+        sizes = {handles._measure(model) for _ in range(20000)}  # raised "dictionary changed size" before
+    finally:
+        stop.set()
+        worker.join()
+    assert sizes == {handles._measure(model)}  # the arrays measured never change

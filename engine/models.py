@@ -699,10 +699,13 @@ def _grid_distribution(bucket: float, agg: np.ndarray, beyond: float, top: float
         return LossDistribution.from_atoms([0.0], [0.0], beyond=1.0, top=top, sorted_unique=True)
     # what from_atoms(..., sorted_unique=True) builds, without re-validating the transform's own output
     # (ascending grid points, probabilities >= 0 summing with beyond to 1)
-    if nz[:count].all():  # the atoms are a prefix of the grid (the usual case: only the far tail underflows)
+    gap = int(np.argmin(nz))  # the first grid point without mass (0 also when there is none)
+    if gap >= count or nz[gap]:  # the atoms are a prefix of the grid (only the far tail underflows)
         values, probs = np.arange(count, dtype=float) * bucket, agg[:count]
-    else:
-        values, probs = np.flatnonzero(nz) * bucket, agg[nz]
+    else:  # a prefix, then the far tail's scattered atoms: only those gathered
+        rest = np.flatnonzero(nz[gap:]) + gap
+        values = np.concatenate([np.arange(gap, dtype=float), rest]) * bucket
+        probs = np.concatenate([agg[:gap], agg[rest]])
     if beyond > 0:  # the mass at or beyond the top as its last atom
         with_top = np.empty(count + 1)
         with_top[:count] = values

@@ -185,7 +185,7 @@ def price_layers(model: LossModel, layers, distortion) -> pd.DataFrame:
     collateral = share * np.array([x.max_annual_loss for x in lays])
     described = [x.describe() for x in lays]
     attachment = [x.attachment for x in lays]
-    notes = [_warning(prem[t], err[t], disc[t], mean_note) for t in range(d)]
+    notes = _warnings(prem, err, disc, mean_note)
     flagged = sum(1 for block in notes for w in block if w)
     if flagged:
         first = next(w for block in notes for w in block if w)
@@ -250,13 +250,18 @@ def _mean_note(diag) -> str:
             f"(tolerance {MEAN_TOLERANCE:g}): give the model a smaller bucket")
 
 
-def _warning(prem, err, disc, mean_note) -> list[str]:
+def _warnings(prem, err, disc, mean_note) -> list[list[str]]:
+    """The warning of each row, one list per distortion (the rows of ``prem``, ``err``, ``disc``, shape (d, k))."""
     with np.errstate(invalid="ignore"):
         scale = np.where(np.isfinite(prem), np.abs(prem), 0.0)
         beyond_over = err > BEYOND_TOLERANCE * scale
         disc_over = disc > DISCRETISATION_TOLERANCE * scale
     if not (beyond_over.any() or disc_over.any() or any(mean_note)):  # the usual case: nothing to say on any row
-        return [""] * len(mean_note)
+        return [[""] * len(mean_note) for _ in range(prem.shape[0])]
+    return [_warning(*rows, mean_note) for rows in zip(prem, err, disc, beyond_over, disc_over)]
+
+
+def _warning(prem, err, disc, beyond_over, disc_over, mean_note) -> list[str]:
     out = []
     for p, e, q, m, beyond_hit, disc_hit in zip(prem, err, disc, mean_note, beyond_over, disc_over):
         reasons = []
@@ -329,7 +334,14 @@ def _columns(lead: tuple) -> pd.Index:
 
 
 def _text(values: list):
-    return pd.array(values, dtype=_TEXT) if _TEXT is not None else values
+    """A text column: a copy of the one built last time for the same texts (a recalculated sheet asks
+    for the same layer names and warnings again), so no frame shares an array another may edit."""
+    return _text_array(tuple(values)).copy() if _TEXT is not None else values
+
+
+@functools.lru_cache(maxsize=64)
+def _text_array(values: tuple):
+    return pd.array(list(values), dtype=_TEXT)
 
 
 def price_layer(model: LossModel, layer: Layer, distortion: Distortion) -> pd.Series:

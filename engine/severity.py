@@ -236,13 +236,20 @@ class _LognormalSF:
     def __call__(self, x):
         if type(x) is float and x > 0.0:  # quadrature's scalar calls: the same ufuncs, without the array set-up
             return special.ndtr(-(np.log(x / self.scale) / self.sigma))
-        y = np.asarray(x, dtype=np.float64) / self.scale
+        x = np.asarray(x, dtype=np.float64)
+        if not x.ndim:
+            y = x / self.scale
+            with np.errstate(divide="ignore", invalid="ignore"):
+                out = special.ndtr(-(np.log(y) / self.sigma))
+            return np.float64(1.0) if y < 0 else out[()]
+        # in place on one scratch array: y / -sigma is -(y / sigma) bit for bit
+        out = x / self.scale
         with np.errstate(divide="ignore", invalid="ignore"):
-            out = special.ndtr(-(np.log(y) / self.sigma))
-        if out.ndim:
-            out[y < 0] = 1.0
-            return out
-        return np.float64(1.0) if y < 0 else out[()]
+            np.log(out, out=out)
+            np.divide(out, -self.sigma, out=out)
+            special.ndtr(out, out=out)
+        out[x < 0] = 1.0  # x / scale < 0 exactly where x < 0
+        return out
 
     # quantiles as scipy computes them (scale * exp(sigma * Phi^-1)), without its argument checks;
     # isf through Phi^-1(q) itself, so far-tail levels keep their precision

@@ -21,8 +21,10 @@ Weibull shapes below 1: Simpson alone loses up to 1e-3 of the mean there)
 Simpson is taken on the bucket's quarters too and the next Romberg column
 kept (O(h^8)) where it agrees with Boole's rule to ``REFINE_ABOVE``; only the
 buckets where it does not (a kink or a singularity) are integrated again by
-4 x 16-point Gauss-Legendre. The first bucket is always integrated on pieces
-shrinking geometrically towards its left end.
+4 x 16-point Gauss-Legendre. The first bucket of a ground-up grid (where a
+density may be infinite), and an excess layer's first bucket where even the
+Romberg column is not trusted, are integrated on pieces shrinking
+geometrically towards their left end.
 
 The aggregate is computed with scipy's real FFT on a zero-padded grid after
 an exponential tilt (Grubel & Hermesmeier 1999), which damps the wrap-around
@@ -94,7 +96,10 @@ def discretise(sf, h: float, n: int, attachment: float = 0.0, limit: float = mat
         # where S bends and Simpson is not already settled, Simpson on the bucket's halves too (two more
         # points), extrapolated (Boole's rule, O(h^6)); then Romberg on quarters, then Gauss-Legendre
         bent = np.flatnonzero(bend > BEND_ABOVE)
-        bent = bent[~_simpson_settled(edges, mids, bent)]
+        # the first bucket of a ground-up grid is integrated on geometric pieces whatever it does (a density
+        # may be infinite at 0); an excess layer's first bucket is checked like any other
+        ground_up = not attachment > 0
+        bent = bent[~_simpson_settled(edges, mids, bent, ground_up)]
         sharp = bent
         if bent.size:
             quarters = np.asarray(sf(attachment + (bent[:, None] + _QUARTER_ENDS) * h), dtype=float).reshape(-1, 2)
@@ -102,7 +107,9 @@ def discretise(sf, h: float, n: int, attachment: float = 0.0, limit: float = mat
             halves = (lo + 4.0 * quarters[:, 0] + 2.0 * mid + 4.0 * quarters[:, 1] + hi) / 12.0
             change = np.abs(halves - sd[bent])
             sd[bent] = boole = halves + (halves - sd[bent]) / 15.0
-            keep = (change > REFINE_ABOVE) & (bent > 0)
+            keep = change > REFINE_ABOVE
+            if ground_up:
+                keep &= bent > 0
             sharp = bent[keep]
             if sharp.size:
                 # one more halving (Simpson on quarters, Romberg's next column); only where even that
@@ -117,9 +124,13 @@ def discretise(sf, h: float, n: int, attachment: float = 0.0, limit: float = mat
                 sharp, change = sharp[keep], change[keep]
                 if sharp.size > REFINE_MAX:
                     sharp = sharp[np.argpartition(change, -REFINE_MAX)[-REFINE_MAX:]]
+        first = ground_up or (sharp.size and sharp[0] == 0)  # the first bucket on geometric pieces
+        if first and sharp.size and sharp[0] == 0:
+            sharp = sharp[1:]
         if sharp.size:
             sd[sharp] = _bucket_means(sf, attachment + sharp * h, h, _EVEN_PIECES)
-        sd[0] = _bucket_means(sf, np.array([float(attachment)]), h, _GEOMETRIC_PIECES)[0]
+        if first:
+            sd[0] = _bucket_means(sf, np.array([float(attachment)]), h, _GEOMETRIC_PIECES)[0]
     np.maximum(sd, 0.0, out=sd)
     np.minimum(sd, 1.0, out=sd)
     if not (sd[1:] <= sd[:-1]).all():  # guard against non-monotone round-off in scipy's sf (a sequential scan: only when needed)
@@ -133,9 +144,9 @@ def discretise(sf, h: float, n: int, attachment: float = 0.0, limit: float = mat
     return probs, float(sd[-1])
 
 
-def _simpson_settled(edges: np.ndarray, mids: np.ndarray, b: np.ndarray) -> np.ndarray:
+def _simpson_settled(edges: np.ndarray, mids: np.ndarray, b: np.ndarray, first_settled: bool = True) -> np.ndarray:
     """True where Simpson's rule is already within ``SIMPSON_BELOW`` of S on bucket ``b``, relative (and
-    for bucket 0, which is integrated on geometric pieces in any case).
+    for bucket 0 when ``first_settled``: it is integrated on geometric pieces in any case).
 
     Simpson's error on a bucket mean is h^4 S''''/2880, about 1/180 of the
     fourth difference of S at spacing h/2 (edges and midpoints); it is taken
@@ -144,7 +155,7 @@ def _simpson_settled(edges: np.ndarray, mids: np.ndarray, b: np.ndarray) -> np.n
     """
     m = mids.size
     if m < 2:
-        return b == 0
+        return (b == 0) & first_settled
     if m <= 3000 + 5 * b.size:  # whole slices cost about 10 ns a bucket, gathers 30 us plus 50 ns a bend
         d4 = np.zeros(m + 1)  # window (j, j + 1) at d4[j + 1]; 0 past either end
         np.abs(edges[:-2] - 4.0 * mids[:-1] + 6.0 * edges[1:-1] - 4.0 * mids[1:] + edges[2:], out=d4[1:m])
@@ -155,7 +166,8 @@ def _simpson_settled(edges: np.ndarray, mids: np.ndarray, b: np.ndarray) -> np.n
             w = first[ok]
             d4 = np.abs(edges[w] - 4.0 * mids[w] + 6.0 * edges[w + 1] - 4.0 * mids[w + 1] + edges[w + 2])
             est[ok] = np.maximum(est[ok], d4)
-    return (est / 180.0 <= SIMPSON_BELOW * mids[b]) | (b == 0)  # relative: far-tail buckets keep their digits
+    settled = est / 180.0 <= SIMPSON_BELOW * mids[b]  # relative: far-tail buckets keep their digits
+    return settled | (b == 0) if first_settled else settled
 
 
 def _bucket_means(sf, starts: np.ndarray, h: float, pieces: tuple) -> np.ndarray:

@@ -194,6 +194,35 @@ def test_discretised_bucket_means_match_quadrature(name, h, n, a, l):
         assert refined.size > 50 and kept.size > 50  # both paths are exercised here
 
 
+@pytest.mark.parametrize("sev,a,l,geometric", [
+    (lw.lognormal(mean=1e6, cv=2.5), 1e6, 1e6, False),  # smooth at the attachment: like any other bucket
+    (lw.pareto(2.5, 1.5e6), 5e6, 5e6, False),
+    (lw.from_scipy("gamma", 0.5, loc=1e6, scale=2e6), 1e6, 1e6, True),  # density infinite at the attachment
+    (lw.from_scipy("weibull_min", 0.7, loc=2e6, scale=1e6), 2e6, 4e6, True),
+    (lw.lognormal(mean=1e6, cv=2.5), 0.0, 1e6, True),  # ground up: always on geometric pieces
+])
+def test_first_bucket_of_an_excess_layer(sev, a, l, geometric):
+    """An excess layer's first bucket goes through the checks every bucket does, and onto pieces shrinking
+    geometrically towards the attachment only where even the Romberg column is not trusted (a density
+    infinite there); a ground-up grid's first bucket always. Its mean against scipy's quad, relative."""
+    sizes = []
+
+    def counted(x):
+        x = np.asarray(x)
+        sizes.append(x.size)
+        return sev.sf(x)
+
+    h = l / 500
+    probs, _ = discretise(counted, h, 2048, a, l)
+    pieces = 16 * (len(fourier._GEOMETRIC) - 1)
+    assert (sizes[-1] == pieces) is geometric
+    s0 = float(sev.sf(a))
+    want = integrate.quad(lambda x: float(sev.sf(x)) / s0, a, a + h, epsabs=0, epsrel=1e-13, limit=200)[0] / h
+    # the mean of S over the first bucket, relative to S(a): 1 - probs[0] loses digits when S(a) is small
+    got = (probs[1:].sum() + 0.0) / s0 if s0 < 0.5 else (1.0 - probs[0]) / s0
+    assert got == pytest.approx(want, rel=1e-12)
+
+
 def test_romberg_column_leaves_few_buckets_to_gauss_legendre():
     """Where Boole's rule is not trusted, one more halving settles almost every bucket of a smooth
     severity: few are left to the 64-point quadrature (which would give the same numbers, slower)."""

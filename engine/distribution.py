@@ -352,30 +352,38 @@ def _pass(group, items, bounds, rows, which, specs):
     need_squares = any(power == 1 for _, power in specs)
     # each region's levels, segment widths (and half differences of squares) written side by side, plus one
     # slot of width 0 after it: where a pair ending at b1 stops
-    at = sum(b1 - b0 + 1 for _, b0, b1, _ in group)
-    s = np.empty(at)
-    width = np.zeros(at)
-    square = np.zeros(at) if need_squares else None
-    where = []
+    # one slice of levels and of atoms per region, joined: the levels plus the region's last one again (the
+    # slot's, so g sees no new value); the atoms b0 .. b1 (at most to the last atom, then repeated), whose
+    # differences within the region are the segments' widths (0 past the last atom)
+    level_parts, atom_parts, where, ends = [], [], [], []
     interior = True  # all of s in (0, 1): each region is non-increasing, so its ends decide
     pos = 0
     for i, b0, b1, _ in group:
         d = items[i][0]
-        v = d.values
-        level = d.sf[b0:b1]
-        end = pos + b1 - b0
-        s[pos:end] = level
-        s[end] = level[-1]  # the slot's level: the region's own last one, so g sees no new value
-        interior = interior and level[0] < 1.0 and level[-1] > 0.0
-        k = min(b1, v.size - 1) - b0  # segments end at the last atom
-        if k > 0:
-            np.subtract(v[b0 + 1 : b0 + k + 1], v[b0 : b0 + k], out=width[pos : pos + k])
-            if need_squares:
-                sq = v[b0 : b0 + k + 1] ** 2
-                np.subtract(sq[1:], sq[:-1], out=square[pos : pos + k])
-                square[pos : pos + k] *= 0.5
+        v, sf = d.values, d.sf
+        level_parts += [sf[b0:b1], sf[b1 - 1 : b1]]
+        interior = interior and sf[b0] < 1.0 and sf[b1 - 1] > 0.0
+        top = min(b1, v.size - 1)  # segments end at the last atom
+        atom_parts.append(v[b0 : top + 1])
+        if top < b1:
+            atom_parts.append(v[top : top + 1])
         where.append(pos - b0)  # atom a of this region sits at a + where in the pass
-        pos = end + 1
+        pos += b1 - b0 + 1
+        ends.append(pos - 1)
+    at = pos
+    s = np.concatenate(level_parts)
+    atoms = np.concatenate(atom_parts)
+    width = np.empty(at)
+    np.subtract(atoms[1:], atoms[:-1], out=width[:-1])
+    width[ends] = 0.0  # the slots (and nothing across regions)
+    square = None
+    if need_squares:
+        sq = atoms**2
+        square = np.empty(at)
+        np.subtract(sq[1:], sq[:-1], out=square[:-1])
+        square[-1] = 0.0
+        square *= 0.5
+        square[ends] = 0.0
     levels = np.empty((len(rows), at))
     for r, g in enumerate(rows.values()):
         if g is None:
@@ -474,9 +482,10 @@ def _merge_ties(v: np.ndarray, p: np.ndarray, presorted: bool = False):
 
 def _sf_from_probs(p: np.ndarray) -> np.ndarray:
     """P(X > v_i) by summing the probabilities above, from the top down (accurate in the tail)."""
-    sf = np.zeros(p.size)
-    if p.size > 1:
-        sf[:-1] = np.cumsum(p[:0:-1])[::-1]
+    sf = np.empty(p.size)
+    if p.size:
+        sf[-1] = 0.0
+        np.cumsum(p[:0:-1], out=sf[-2::-1])  # written in place, top down
     total = sf[0] + p[0] if p.size else 1.0
     sf /= total  # renormalise exactly so the sf starts from a proper distribution
     return sf

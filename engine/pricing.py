@@ -161,26 +161,32 @@ def price_layers(model: LossModel, layers, distortion) -> pd.DataFrame:
     # every group's layers, and their error-estimate twins, in shared passes
     profiles = layer_profiles([(u, a, lim) for _, _, _, a, lim, u, _ in groups]
                               + [(c, a, lim) for _, _, _, a, lim, _, c in groups if c is not None], gs)
-    fine, twins = profiles[: len(groups)], iter(profiles[len(groups) :])
-    for (oa, ol, idx, a, lim, u, coarse), (e, second, prices) in zip(groups, fine):
-        share = np.array([lays[i].share for i in idx])
-        el[idx] = share * e
-        sd[idx] = share * np.sqrt(np.maximum(second - e * e, 0.0))
+    fine, twins = profiles[: len(groups)], profiles[len(groups) :]
+    share = np.array([x.share for x in lays])
+    # the layer-by-layer numbers of all groups at once, in the groups' order of rows
+    rows = np.concatenate([idx for _, _, idx, _, _, _, _ in groups])
+    e = np.concatenate([mean for mean, _, _ in fine])
+    second = np.concatenate([moment for _, moment, _ in fine])
+    p = np.concatenate([np.asarray(prices, dtype=float).reshape(d, -1) for _, _, prices in fine], axis=1)
+    el[rows] = share[rows] * e
+    sd[rows] = share[rows] * np.sqrt(np.maximum(second - e * e, 0.0))
+    prem[:, rows] = share[rows] * p
+    if twins:
+        with_twin = [c is not None for *_, c in groups]
+        cols = np.concatenate([np.full(len(g[2]), t) for g, t in zip(groups, with_twin)])
+        ec = np.concatenate([mean for mean, _, _ in twins])
+        pc = np.concatenate([np.asarray(prices, dtype=float).reshape(d, -1) for _, _, prices in twins], axis=1)
+        with np.errstate(invalid="ignore"):
+            change = np.maximum(np.abs(p[:, cols] - pc), np.abs(e[cols] - ec))
+        disc[:, rows[cols]] = share[rows[cols]] * np.where(np.isnan(change), np.inf, change)  # unknown: no tolerance met
+    for oa, ol, idx, a, lim, u, _ in groups:
         pa[idx] = u.survival(a)
         exhaust_at = np.where(np.isfinite(lim), a + lim, a + ol)
         pe[idx] = np.where(np.isfinite(exhaust_at), u.survival_left(exhaust_at), 0.0)
-        p = np.asarray(prices, dtype=float).reshape(d, len(idx))
-        prem[:, idx] = share * p
-        err[:, idx] = share * _beyond(model, u, oa, ol, a, lim, gs)
-        if coarse is not None:
-            ec, _, pc = next(twins)
-            with np.errstate(invalid="ignore"):
-                change = np.maximum(np.abs(p - np.asarray(pc, dtype=float).reshape(d, len(idx))), np.abs(np.asarray(e) - ec))
-            disc[:, idx] = share * np.where(np.isnan(change), np.inf, change)  # unknown: no tolerance met
+        err[:, idx] = share[idx] * _beyond(model, u, oa, ol, a, lim, gs)
         note = _mean_note(u.diagnostics)
         for i in idx:
             mean_note[i] = note
-    share = np.array([x.share for x in lays])
     limit = np.array([x.limit for x in lays])
     collateral = share * np.array([x.max_annual_loss for x in lays])
     described = [x.describe() for x in lays]

@@ -372,7 +372,7 @@ def _pass(group, items, bounds, rows, which, specs):
         ends.append(pos - 1)
     at = pos
     s = np.concatenate(level_parts)
-    atoms = np.concatenate(atom_parts)
+    atoms = atom_parts[0] if len(atom_parts) == 1 else np.concatenate(atom_parts)  # a view for a lone block
     width = np.empty(at)
     np.subtract(atoms[1:], atoms[:-1], out=width[:-1])
     width[ends] = 0.0  # the slots (and nothing across regions)
@@ -381,9 +381,11 @@ def _pass(group, items, bounds, rows, which, specs):
         sq = atoms**2
         square = np.empty(at)
         np.subtract(sq[1:], sq[:-1], out=square[:-1])
+        del sq  # temporaries go before the levels are made: a long sample's peak memory
         square[-1] = 0.0
         square *= 0.5
         square[ends] = 0.0
+    del atoms
     levels = np.empty((len(rows), at))
     for r, g in enumerate(rows.values()):
         if g is None:

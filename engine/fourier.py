@@ -97,9 +97,9 @@ def discretise(sf, h: float, n: int, attachment: float = 0.0, limit: float = mat
         # points), extrapolated (Boole's rule, O(h^6)); then Romberg on quarters, then Gauss-Legendre
         bent = np.flatnonzero(bend > BEND_ABOVE)
         # the first bucket of a ground-up grid is integrated on geometric pieces whatever it does (a density
-        # may be infinite at 0); an excess layer's first bucket is checked like any other
-        ground_up = not attachment > 0
-        bent = bent[~_simpson_settled(edges, mids, bent, ground_up)]
+        # may be infinite at 0), so it is left out here; an excess layer's first bucket is checked like any other
+        first = not attachment > 0  # the first bucket on geometric pieces
+        bent = bent[~_simpson_settled(edges, mids, bent, first)]
         sharp = bent
         if bent.size:
             quarters = np.asarray(sf(attachment + (bent[:, None] + _QUARTER_ENDS) * h), dtype=float).reshape(-1, 2)
@@ -108,8 +108,6 @@ def discretise(sf, h: float, n: int, attachment: float = 0.0, limit: float = mat
             change = np.abs(halves - sd[bent])
             sd[bent] = boole = halves + (halves - sd[bent]) / 15.0
             keep = change > REFINE_ABOVE
-            if ground_up:
-                keep &= bent > 0
             sharp = bent[keep]
             if sharp.size:
                 # one more halving (Simpson on quarters, Romberg's next column); only where even that
@@ -122,11 +120,10 @@ def discretise(sf, h: float, n: int, attachment: float = 0.0, limit: float = mat
                 sd[sharp] = finer + (finer - boole[keep]) / 63.0
                 keep = change > REFINE_ABOVE
                 sharp, change = sharp[keep], change[keep]
+                if sharp.size and sharp[0] == 0:  # ascending, so it leads: an excess layer's first bucket
+                    first, sharp, change = True, sharp[1:], change[1:]
                 if sharp.size > REFINE_MAX:
                     sharp = sharp[np.argpartition(change, -REFINE_MAX)[-REFINE_MAX:]]
-        first = ground_up or (sharp.size and sharp[0] == 0)  # the first bucket on geometric pieces
-        if first and sharp.size and sharp[0] == 0:
-            sharp = sharp[1:]
         if sharp.size:
             sd[sharp] = _bucket_means(sf, attachment + sharp * h, h, _EVEN_PIECES)
         if first:

@@ -171,14 +171,14 @@ def price_layers(model: LossModel, layers, distortion) -> pd.DataFrame:
     el[rows] = share[rows] * e
     sd[rows] = share[rows] * np.sqrt(np.maximum(second - e * e, 0.0))
     prem[:, rows] = share[rows] * p
-    if twins:
-        with_twin = [c is not None for *_, c in groups]
-        cols = np.concatenate([np.full(len(g[2]), t) for g, t in zip(groups, with_twin)])
+    if twins:  # the rows of the groups with an error-estimate twin, in the twins' order
+        twinned = np.concatenate([np.full(len(idx), c is not None) for _, _, idx, _, _, _, c in groups])
         ec = np.concatenate([mean for mean, _, _ in twins])
         pc = np.concatenate([np.asarray(prices, dtype=float).reshape(d, -1) for _, _, prices in twins], axis=1)
         with np.errstate(invalid="ignore"):
-            change = np.maximum(np.abs(p[:, cols] - pc), np.abs(e[cols] - ec))
-        disc[:, rows[cols]] = share[rows[cols]] * np.where(np.isnan(change), np.inf, change)  # unknown: no tolerance met
+            change = np.maximum(np.abs(p[:, twinned] - pc), np.abs(e[twinned] - ec))
+        at = rows[twinned]
+        disc[:, at] = share[at] * np.where(np.isnan(change), np.inf, change)  # unknown: no tolerance met
     for oa, ol, idx, a, lim, u, _ in groups:
         pa[idx] = u.survival(a)
         exhaust_at = np.where(np.isfinite(lim), a + lim, a + ol)

@@ -223,6 +223,25 @@ def test_first_bucket_of_an_excess_layer(sev, a, l, geometric):
     assert got == pytest.approx(want, rel=1e-12)
 
 
+def test_first_bucket_keeps_its_geometric_pieces_when_few_buckets_may_be_refined(monkeypatch):
+    """With more unsettled buckets than REFINE_MAX, the ones left to Gauss-Legendre are the sharpest;
+    an excess layer's first bucket, singular at the attachment, still goes onto its geometric pieces."""
+    sev = lw.from_scipy("gamma", 0.5, loc=1e6, scale=2e6)
+    monkeypatch.setattr(fourier, "REFINE_MAX", 1)
+    sizes = []
+
+    def counted(x):
+        x = np.asarray(x)
+        sizes.append(x.size)
+        return sev.sf(x)
+
+    h = 2e3
+    probs, _ = discretise(counted, h, 2048, 1e6, 1e6)
+    assert sizes[-2:] == [64, 16 * (len(fourier._GEOMETRIC) - 1)]  # one bucket on even pieces, then the first
+    want = integrate.quad(lambda x: float(sev.sf(x)), 1e6, 1e6 + h, epsabs=0, epsrel=1e-13, limit=200)[0] / h
+    assert 1.0 - probs[0] == pytest.approx(want, rel=1e-12)
+
+
 def test_romberg_column_leaves_few_buckets_to_gauss_legendre():
     """Where Boole's rule is not trusted, one more halving settles almost every bucket of a smooth
     severity: few are left to the 64-point quadrature (which would give the same numbers, slower)."""

@@ -501,11 +501,14 @@ def section_towers(rep: Report, quick: bool, profile: bool):
         worst_ratio = min((e_mc[k] / e_eng[k]) if e_eng[k] > 0 else math.inf for k in MEASURES)
         t_noest = median(times[key + "_noest"])
         t_beside = median(beside[name])
-        rows.append([name, n_grid, ms(t_eng), ms(t_noest), ms(t_warm), ms(t_raw), f"{t_eng / t_raw:.1f}", ms(t_mc), ms(t_beside),
+        # engine / raw per round of the interleaved runs: a slow spell hits both of a round alike
+        paired = tuple(float(q) for q in np.percentile(np.divide(times[key], times[key + "_raw"]), [50, 25, 75]))
+        rows.append([name, n_grid, ms(t_eng), ms(t_noest), ms(t_warm), ms(t_raw), f"{paired[0]:.1f}", ms(t_mc), ms(t_beside),
                      f"{t_mc / t_beside:,.0f}", f"{max(e_eng.values()):.1e}", f"{max(e_mc.values()):.1e}", f"{worst_ratio:,.0f}"])
         rep.data.setdefault("fs", {})[name] = dict(t_eng=t_eng, t_raw=t_raw, t_mc=t_mc, t_beside=t_beside, worst_ratio=worst_ratio,
-                                                   e_eng=e_eng, e_mc=e_mc, t_noest=t_noest, t_warm=t_warm)
-    rep.table(["tower", "grid points", "engine ms (cold)", "... without the discretisation-error estimate", "engine ms (cached model)", "raw transform ms", "engine / raw",
+                                                   e_eng=e_eng, e_mc=e_mc, t_noest=t_noest, t_warm=t_warm,
+                                                   paired_raw=paired)
+    rep.table(["tower", "grid points", "engine ms (cold)", "... without the discretisation-error estimate", "engine ms (cached model)", "raw transform ms", "engine / raw (median of the rounds)",
                "Monte Carlo ms", "engine ms (cold, timed beside the Monte Carlo runs)", "MC / engine (beside)",
                "top layer: engine worst rel. error", "top layer: MC worst rel. error",
                "top layer: MC error / engine error (worst measure)"], rows)
@@ -602,7 +605,10 @@ def section_towers(rep: Report, quick: bool, profile: bool):
                    f"{r['t_mc'] / r['t_eng']:,.0f}x against the main block's median)")
         rep.target(f"{name} tower >= 10x more accurate on the top layer", r["worst_ratio"] >= 10,
                    f"{r['worst_ratio']:,.0f}x (worst of expected loss and the five prices)")
-        rep.target(f"{name} tower within 5x of the raw transform", r["t_eng"] / r["t_raw"] <= 5, f"{r['t_eng'] / r['t_raw']:.1f}x")
+        mid, lo, hi = r["paired_raw"]
+        rep.target(f"{name} tower within 5x of the raw transform", mid <= 5,
+                   f"{mid:.1f}x (median over the rounds of the interleaved runs of engine / raw in the round; the "
+                   f"middle half {lo:.1f}-{hi:.1f}x; ratio of the medians {r['t_eng'] / r['t_raw']:.1f}x)")
     rep.add()
 
     if profile:
@@ -955,6 +961,8 @@ NOTES = """## How to read these figures
   suites on it; see the load average above). Every time is a median of repeated runs, and peers run
   interleaved with the engine in the same process, so ratios (engine / raw transform, Monte Carlo /
   engine, accuracy ratios) are the figures to quote; absolute milliseconds move by 2x between runs.
+  Engine / raw transform is the median, over the rounds of the interleaved runs, of the ratio within a
+  round (a slow spell slows both of a round alike), given with the middle half of the rounds.
 * "Cold" means a fresh model: the FFT build (and, since the numerical guards, the coarser
   discretisation-error grid) is inside the time, as the Monte Carlo peer's simulation is inside its time.
 * Accuracy: relative error against a reference grid 4 times finer and longer (the aggregate tower

@@ -194,6 +194,18 @@ def test_discretised_bucket_means_match_quadrature(name, h, n, a, l):
         assert refined.size > 50 and kept.size > 50  # both paths are exercised here
 
 
+def _counting(sf):
+    """``sf`` and the list of the sizes of the calls made to it, in order."""
+    sizes = []
+
+    def counted(x):
+        x = np.asarray(x)
+        sizes.append(x.size)
+        return sf(x)
+
+    return counted, sizes
+
+
 @pytest.mark.parametrize("sev,a,l,geometric", [
     (lw.lognormal(mean=1e6, cv=2.5), 1e6, 1e6, False),  # smooth at the attachment: like any other bucket
     (lw.pareto(2.5, 1.5e6), 5e6, 5e6, False),
@@ -205,12 +217,7 @@ def test_first_bucket_of_an_excess_layer(sev, a, l, geometric):
     """An excess layer's first bucket goes through the checks every bucket does, and onto pieces shrinking
     geometrically towards the attachment only where even the Romberg column is not trusted (a density
     infinite there); a ground-up grid's first bucket always. Its mean against scipy's quad, relative."""
-    sizes = []
-
-    def counted(x):
-        x = np.asarray(x)
-        sizes.append(x.size)
-        return sev.sf(x)
+    counted, sizes = _counting(sev.sf)
 
     h = l / 500
     probs, _ = discretise(counted, h, 2048, a, l)
@@ -228,12 +235,7 @@ def test_first_bucket_keeps_its_geometric_pieces_when_few_buckets_may_be_refined
     an excess layer's first bucket, singular at the attachment, still goes onto its geometric pieces."""
     sev = lw.from_scipy("gamma", 0.5, loc=1e6, scale=2e6)
     monkeypatch.setattr(fourier, "REFINE_MAX", 1)
-    sizes = []
-
-    def counted(x):
-        x = np.asarray(x)
-        sizes.append(x.size)
-        return sev.sf(x)
+    counted, sizes = _counting(sev.sf)
 
     h = 2e3
     probs, _ = discretise(counted, h, 2048, 1e6, 1e6)
@@ -246,12 +248,7 @@ def test_romberg_column_leaves_few_buckets_to_gauss_legendre():
     """Where Boole's rule is not trusted, one more halving settles almost every bucket of a smooth
     severity: few are left to the 64-point quadrature (which would give the same numbers, slower)."""
     sev = lw.lognormal(mean=1e6, cv=2.5)
-    sizes = []
-
-    def counted(x):
-        x = np.asarray(x)
-        sizes.append(x.size)
-        return sev.sf(x)
+    counted, sizes = _counting(sev.sf)
 
     discretise(counted, 2e4, 4096)
     m = 4096

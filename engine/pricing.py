@@ -168,9 +168,10 @@ def price_layers(model: LossModel, layers, distortion) -> pd.DataFrame:
     e = np.concatenate([mean for mean, _, _ in fine])
     second = np.concatenate([moment for _, moment, _ in fine])
     p = np.concatenate([np.asarray(prices, dtype=float).reshape(d, -1) for _, _, prices in fine], axis=1)
-    el[rows] = share[rows] * e
-    sd[rows] = share[rows] * np.sqrt(np.maximum(second - e * e, 0.0))
-    prem[:, rows] = share[rows] * p
+    row_share = share[rows]
+    el[rows] = row_share * e
+    sd[rows] = row_share * np.sqrt(np.maximum(second - e * e, 0.0))
+    prem[:, rows] = row_share * p
     if twins:  # the rows of the groups with an error-estimate twin, in the twins' order
         twinned = np.concatenate([np.full(len(idx), c is not None) for _, _, idx, _, _, _, c in groups])
         ec = np.concatenate([mean for mean, _, _ in twins])
